@@ -1,0 +1,188 @@
+"""Where Dask work runs, and progress while it runs.
+
+Stages hand lists of ``dask.delayed`` tasks (typically one per output block) to
+:func:`run_tasks`; it computes them on the active scheduler and shows progress:
+
+- a rich bar with counts and time left when stderr is a terminal;
+- plain log lines (every ~10 %) otherwise, so batch-job logs stay readable.
+
+Dask's local callbacks print nothing under a distributed client, so with a client the tasks are
+submitted as futures and advanced with ``as_completed`` (which also surfaces a failing task at
+once, naming its key).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import logging
+import sys
+import time
+from collections.abc import Iterator, Sequence
+from typing import Any
+
+import dask
+
+log = logging.getLogger(__name__)
+
+_state: dict[str, Any] = {"client": None, "scheduler": "threads", "workers": None, "quiet": False}
+
+
+def set_quiet(quiet: bool) -> None:
+    """Silence progress output (tests, ``--quiet``)."""
+    _state["quiet"] = quiet
+
+
+def current_client():
+    """The distributed client in use, or None for the local schedulers."""
+    return _state["client"]
+
+
+@contextlib.contextmanager
+def use_scheduler(cfg=None) -> Iterator[Any]:
+    """Activate the scheduler named in a :class:`~pipeline.config.ComputeConfig`.
+
+    ``threads`` (default) and ``processes`` use Dask's local schedulers; ``local-cluster``
+    starts a ``distributed.LocalCluster``; ``slurm`` a dask-jobqueue ``SLURMCluster``;
+    ``address`` connects to a running scheduler. The dashboard binds to localhost unless the
+    config says otherwise, and its address is logged.
+    """
+    scheduler = "threads" if cfg is None else cfg.scheduler
+    prev = dict(_state)
+    cluster = client = None
+    try:
+        if scheduler in ("threads", "processes"):
+            _state.update(client=None, scheduler=scheduler, workers=None if cfg is None else cfg.workers)
+            with dask.config.set(scheduler=scheduler, num_workers=None if cfg is None else cfg.workers):
+                yield None
+            return
+        import distributed
+
+        if scheduler == "local-cluster":
+            cluster = distributed.LocalCluster(
+                n_workers=cfg.workers,
+                threads_per_worker=cfg.threads_per_worker,
+                processes=True,
+                memory_limit=cfg.memory_limit,
+                dashboard_address=cfg.dashboard_address,
+                silence_logs=logging.ERROR,
+            )
+            client = distributed.Client(cluster)
+        elif scheduler == "slurm":
+            from dask_jobqueue import SLURMCluster
+
+            opts = {"cores": cfg.threads_per_worker, "memory": cfg.memory_limit, "processes": 1}
+            opts.update(cfg.slurm)
+            opts.setdefault("scheduler_options", {"dashboard_address": cfg.dashboard_address})
+            cluster = SLURMCluster(**opts)
+            cluster.scale(jobs=cfg.workers)
+            client = distributed.Client(cluster)
+            client.wait_for_workers(1, timeout=120)
+        elif scheduler == "address":
+            client = distributed.Client(cfg.address)
+        log.info("dask dashboard: %s", getattr(client, "dashboard_link", "n/a"))
+        _state.update(client=client, scheduler=scheduler, workers=cfg.workers)
+        yield client
+    finally:
+        if client is not None:
+            client.close()
+        if cluster is not None:
+            cluster.close()
+        _state.update(prev)
+
+
+def n_workers() -> int:
+    """Number of parallel workers of the active scheduler (for sizing task batches)."""
+    if _state["client"] is not None:
+        return max(1, sum(w["nthreads"] for w in _state["client"].scheduler_info()["workers"].values()))
+    import os
+
+    return _state["workers"] or os.cpu_count() or 1
+
+
+class _Progress:
+    """Rich bar on a terminal, plain log lines otherwise."""
+
+    def __init__(self, desc: str, total: int):
+        self.desc, self.total, self.done, self.t0 = desc, total, 0, time.monotonic()
+        self._next_log = 0.1
+        self._bar = None
+        if not _state["quiet"] and sys.stderr.isatty():
+            from rich.progress import (
+                BarColumn,
+                MofNCompleteColumn,
+                Progress,
+                TextColumn,
+                TimeRemainingColumn,
+            )
+
+            self._bar = Progress(
+                TextColumn("{task.description:<12}"),
+                BarColumn(),
+                MofNCompleteColumn(),
+                TimeRemainingColumn(),
+                transient=False,
+            )
+            self._bar.start()
+            self._task = self._bar.add_task(desc, total=total)
+
+    def advance(self, n: int = 1) -> None:
+        self.done += n
+        if self._bar is not None:
+            self._bar.advance(self._task, n)
+        elif not _state["quiet"] and self.total and self.done / self.total >= self._next_log:
+            el = time.monotonic() - self.t0
+            left = el / self.done * (self.total - self.done)
+            log.info("%s: %d/%d done, %.0f s elapsed, ~%.0f s left", self.desc, self.done, self.total, el, left)
+            self._next_log += 0.1
+
+    def close(self) -> None:
+        if self._bar is not None:
+            self._bar.stop()
+
+
+def run_tasks(tasks: Sequence[Any], desc: str) -> list[Any]:
+    """Compute ``dask.delayed`` tasks (or dask collections) with progress; results in order.
+
+    Under a distributed client the tasks run as futures (retried by Dask when a worker is lost);
+    a task that raises is re-raised here with its key in the message.
+    """
+    tasks = list(tasks)
+    bar = _Progress(desc, len(tasks))
+    try:
+        client = _state["client"]
+        if client is not None:
+            from distributed import as_completed
+
+            futures = client.compute(tasks, retries=2)
+            index = {f.key: i for i, f in enumerate(futures)}
+            results: list[Any] = [None] * len(tasks)
+            for fut in as_completed(futures):
+                try:
+                    results[index[fut.key]] = fut.result()
+                except Exception as exc:
+                    for f in futures:
+                        f.cancel()
+                    raise type(exc)(f"{desc}: task {fut.key} failed: {exc}") from exc
+                bar.advance()
+            return results
+        from dask.callbacks import Callback
+
+        class _CB(Callback):
+            def _posttask(self, key, result, dsk, state, id):  # noqa: A002
+                if key in keys:
+                    bar.advance()
+
+        graph_keys = [t.__dask_keys__() if hasattr(t, "__dask_keys__") else None for t in tasks]
+        keys = {k for k in graph_keys if isinstance(k, (str, tuple))}
+        if len(keys) != len(tasks):
+            # Collections (arrays) have nested keys; count per task in batches instead.
+            out = []
+            step = max(1, n_workers() * 2)
+            for i in range(0, len(tasks), step):
+                out.extend(dask.compute(*tasks[i : i + step]))
+                bar.advance(len(tasks[i : i + step]))
+            return out
+        with _CB():
+            return list(dask.compute(*tasks))
+    finally:
+        bar.close()
