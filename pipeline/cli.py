@@ -25,6 +25,7 @@ app = typer.Typer(
     no_args_is_help=True,
 )
 log = logging.getLogger("pipeline")
+_VERBOSE = {"level": 0}
 
 
 def _err(msg: str) -> None:
@@ -49,7 +50,7 @@ def handled(fn):
         except Exception as exc:  # an internal error: say so, keep the detail in the log
             log.debug("internal error", exc_info=True)
             _err(f"internal error: {type(exc).__name__}: {exc} (rerun with -v for details)")
-            if logging.getLogger("pipeline").isEnabledFor(logging.INFO):
+            if _VERBOSE["level"] > 0:
                 import traceback
 
                 traceback.print_exc()
@@ -65,6 +66,7 @@ def _main(
 ) -> None:
     from pipeline import compute
 
+    _VERBOSE["level"] = verbose
     level = logging.WARNING - 10 * min(verbose, 2) if verbose else logging.WARNING
     if sys.stderr.isatty():
         from rich.logging import RichHandler

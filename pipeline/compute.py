@@ -16,8 +16,10 @@ from __future__ import annotations
 import contextlib
 import logging
 import sys
+import tempfile
 import time
 from collections.abc import Iterator, Sequence
+from pathlib import Path
 from typing import Any
 
 import dask
@@ -72,6 +74,8 @@ def use_scheduler(cfg=None) -> Iterator[Any]:
 
             opts = {"cores": cfg.threads_per_worker, "memory": cfg.memory_limit, "processes": 1}
             opts.update(cfg.slurm)
+            # Worker logs would otherwise land in the current folder, one file per job.
+            opts.setdefault("log_directory", str(Path(tempfile.gettempdir()) / "crackstack-slurm-logs"))
             opts.setdefault("scheduler_options", {"dashboard_address": cfg.dashboard_address})
             cluster = SLURMCluster(**opts)
             cluster.scale(jobs=cfg.workers)

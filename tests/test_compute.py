@@ -1,0 +1,100 @@
+"""Schedulers and progress: the same results whichever scheduler runs the tasks."""
+
+import logging
+import shutil
+import subprocess
+
+import dask
+import pytest
+
+from pipeline import compute
+from pipeline.config import ComputeConfig
+
+
+def _tasks():
+    # Built-ins only: a SLURM worker cannot import this test module by reference.
+    return [dask.delayed(sum)([float(i)] * 3) for i in range(7)]
+
+
+@pytest.mark.parametrize("scheduler", ["threads", "processes"])
+def test_local_schedulers_same_results(scheduler):
+    with compute.use_scheduler(ComputeConfig(scheduler=scheduler, workers=2)):
+        assert compute.run_tasks(_tasks(), "test") == [3.0 * i for i in range(7)]
+
+
+def test_local_cluster_same_results():
+    cfg = ComputeConfig(scheduler="local-cluster", workers=2, memory_limit="1GiB")
+    with compute.use_scheduler(cfg) as client:
+        assert client is not None
+        assert compute.current_client() is client
+        assert compute.run_tasks(_tasks(), "test") == [3.0 * i for i in range(7)]
+    assert compute.current_client() is None
+
+
+def _fails(i):
+    if i == 3:
+        raise ValueError("bad block 3")
+    return i
+
+
+def test_failing_task_names_itself_under_distributed():
+    cfg = ComputeConfig(scheduler="local-cluster", workers=1, memory_limit="1GiB")
+    with compute.use_scheduler(cfg), pytest.raises(ValueError, match="bad block 3"):
+        compute.run_tasks(
+            [dask.delayed(_fails)(i, dask_key_name=f"blk-{i}") for i in range(5)], "test"
+        )
+
+
+def test_progress_lines_when_not_a_terminal(caplog):
+    compute.set_quiet(False)
+    with caplog.at_level(logging.INFO, logger="pipeline.compute"):
+        compute.run_tasks(_tasks(), "demo-stage")
+    assert any("demo-stage" in r.getMessage() and "done" in r.getMessage() for r in caplog.records)
+
+
+def test_slurm_job_script_renders_without_slurm():
+    # dask-jobqueue renders the batch script without sbatch (ECOSYSTEM notes, section 4.2).
+    jq = pytest.importorskip("dask_jobqueue")
+    cluster = jq.SLURMCluster(
+        cores=4,
+        processes=2,
+        memory="8GiB",
+        queue="short",
+        account="wafers",
+        walltime="01:00:00",
+        job_extra_directives=["--exclusive"],
+    )
+    try:
+        script = cluster.job_script()
+    finally:
+        cluster.close()
+    assert "#SBATCH -p short" in script
+    assert "#SBATCH -A wafers" in script
+    assert "#SBATCH --cpus-per-task=4" in script
+    assert "#SBATCH --exclusive" in script
+    assert "--nworkers 2" in script and "--nthreads 2" in script
+
+
+def _slurm_idle() -> str | None:
+    if shutil.which("sinfo") is None:
+        return "no sinfo on PATH (SLURM not installed)"
+    out = subprocess.run(["sinfo", "-h", "-o", "%T"], capture_output=True, text=True, timeout=10)
+    if "idle" not in out.stdout.split():
+        return f"no idle SLURM node (sinfo: {out.stdout.strip() or out.stderr.strip()})"
+    return None
+
+
+@pytest.mark.slurm
+def test_tasks_run_through_slurm():
+    why = _slurm_idle()
+    if why:
+        pytest.skip(why)
+    cfg = ComputeConfig(
+        scheduler="slurm",
+        workers=1,
+        threads_per_worker=1,
+        memory_limit="1GiB",
+        slurm={"walltime": "00:10:00", "processes": 1},
+    )
+    with compute.use_scheduler(cfg):
+        assert compute.run_tasks(_tasks(), "slurm") == [3.0 * i for i in range(7)]
