@@ -88,7 +88,14 @@ def check(acquisition: Annotated[Path, typer.Argument(help="acquisition.yaml")])
     """Validate an acquisition without processing and print a short summary."""
     from pipeline.ingest import describe_acquisition
 
-    info = describe_acquisition(acquisition)
+    # check prints the warnings itself, once, after the summary; keep ingest's log quiet here.
+    ingest_log = logging.getLogger("pipeline.ingest")
+    old_level = ingest_log.level
+    ingest_log.setLevel(logging.ERROR)
+    try:
+        info = describe_acquisition(acquisition)
+    finally:
+        ingest_log.setLevel(old_level)
     width = max(len(k) for k in info)
     for key, value in info.items():
         if key == "warnings":

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import difflib
 import math
+import re
 from pathlib import Path
 from typing import Annotated, Any, Literal, TypeVar
 
@@ -152,7 +153,7 @@ class Scan(Strict):
                 raise ValueError("positions_um needs at least 2 finite values")
             d = np.diff(p)
             if not (np.all(d > 0) or np.all(d < 0)):
-                bad = int(np.nonzero(np.sign(d) != np.sign(d[0]) | (d == 0))[0][0]) + 1
+                bad = int(np.nonzero((np.sign(d) != np.sign(d[0])) | (d == 0))[0][0]) + 1
                 raise ValueError(
                     f"positions_um must be strictly monotonic; it breaks at index {bad} "
                     f"({p[bad - 1]} -> {p[bad]})"
@@ -207,7 +208,7 @@ class Acquisition(Strict):
         if lam >= 2 * d:
             e_min = HC_KEV_A / (2 * d)
             raise ValueError(
-                f"beam: energy {self.beam.energy:.3f} keV is below the cut-off of reflection "
+                f"beam.energy_keV: energy {self.beam.energy:.3f} keV is below the cut-off of reflection "
                 f"{list(self.beam.reflection)} (lambda must be < 2d = {2 * d:.4f} A; "
                 f"use energy_keV > {e_min:.3f})"
             )
@@ -287,22 +288,31 @@ class RunConfig(Strict):
 M = TypeVar("M", bound=BaseModel)
 
 
+def _models_in(ann: Any) -> type[BaseModel] | None:
+    """The pydantic model inside an annotation such as ``Model``, ``Model | None``, ``list[Model]``."""
+    if isinstance(ann, type) and issubclass(ann, BaseModel):
+        return ann
+    for arg in getattr(ann, "__args__", ()) or ():
+        found = _models_in(arg)
+        if found is not None:
+            return found
+    return None
+
+
 def _model_at(model: type[BaseModel], loc: tuple) -> type[BaseModel] | None:
     """The model class that owns the key at ``loc`` (for did-you-mean suggestions)."""
-    cur: Any = model
+    cur: type[BaseModel] | None = model
     for part in loc[:-1]:
-        if not (isinstance(cur, type) and issubclass(cur, BaseModel)):
+        if cur is None:
             return None
+        if isinstance(part, int):  # an index into a list of models
+            continue
         field = cur.model_fields.get(str(part))
         if field is None:
-            return None
-        ann = field.annotation
-        for cand in getattr(ann, "__args__", ()) or (ann,):
-            if isinstance(cand, type) and issubclass(cand, BaseModel):
-                ann = cand
-                break
-        cur = ann
-    return cur if isinstance(cur, type) and issubclass(cur, BaseModel) else None
+            # A tagged union member name (pydantic puts it in the location); stay put.
+            continue
+        cur = _models_in(field.annotation)
+    return cur
 
 
 def format_validation_error(err: ValidationError, model: type[BaseModel], source: str) -> str:
@@ -320,6 +330,10 @@ def format_validation_error(err: ValidationError, model: type[BaseModel], source
             msg = f"unknown key{hint} (accepted: {', '.join(names)})"
         elif "input" in e and e["type"] not in ("missing",) and not isinstance(e["input"], dict):
             msg = f"{msg} (got {e['input']!r})"
+        m = re.match(r"^([A-Za-z_][\w.]*): (.*)$", msg)
+        if m and loc == ():
+            # Model-level checks name the key they concern at the start of the message.
+            key, msg = m.group(1), m.group(2)
         lines.append(f"{source}: {key}: {msg}")
     return "\n".join(lines)
 

@@ -12,15 +12,10 @@ from pathlib import Path
 
 from pipeline import runfolder as rf
 
-REPO_CONFIGS = Path(__file__).resolve().parent.parent / "configs"
-
 
 def demo_recipe_path() -> Path:
-    """The demo thermal recipe (configs/demo_recipe.yaml, also shipped as package data)."""
-    for p in (REPO_CONFIGS / "demo_recipe.yaml", Path(__file__).parent / "data" / "demo_recipe.yaml"):
-        if p.is_file():
-            return p
-    raise FileNotFoundError("demo_recipe.yaml is missing from this install")
+    """The demo thermal recipe, shipped as package data (configs/demo_recipe.yaml links to it)."""
+    return Path(__file__).parent / "data" / "demo_recipe.yaml"
 
 
 def crack_table(run_root: Path) -> list[dict]:

@@ -23,7 +23,7 @@ import io
 import json
 import os
 import tempfile
-from functools import lru_cache
+from functools import cache
 from importlib import resources
 from pathlib import Path
 from typing import Any
@@ -103,7 +103,7 @@ def read_json(path: str | Path, what: str = "JSON file") -> Any:
         raise InputError(f"{path}: {what} is not valid JSON ({exc})") from None
 
 
-@lru_cache(maxsize=None)
+@cache
 def defects_schema() -> dict:
     """The JSON Schema (draft 2020-12) of ``defects.json`` that the project ships."""
     text = resources.files("pipeline").joinpath("schemas/defects.schema.json").read_text()
