@@ -176,16 +176,17 @@ def run_tasks(tasks: Sequence[Any], desc: str) -> list[Any]:
                 if key in keys:
                     bar.advance()
 
-        graph_keys = [t.__dask_keys__() if hasattr(t, "__dask_keys__") else None for t in tasks]
-        keys = {k for k in graph_keys if isinstance(k, (str, tuple))}
-        if len(keys) != len(tasks):
-            # Collections (arrays) have nested keys; count per task in batches instead.
+        from dask.delayed import Delayed
+
+        if not all(isinstance(t, Delayed) for t in tasks):
+            # Collections (arrays) have many keys each; advance per batch instead.
             out = []
             step = max(1, n_workers() * 2)
             for i in range(0, len(tasks), step):
                 out.extend(dask.compute(*tasks[i : i + step]))
                 bar.advance(len(tasks[i : i + step]))
             return out
+        keys = {t.key for t in tasks}
         with _CB():
             return list(dask.compute(*tasks))
     finally:

@@ -108,9 +108,7 @@ def _stage_register(ctx: RunContext) -> dict:
 
     series, corrected = ctx.corrected()
     res = register_frames(corrected, ctx.geom, series.positions_um, ctx.cfg.registration)
-    write_registration_csv(ctx.out / rf.REGISTRATION_CSV, res)
-    for w in res.warnings:
-        log.warning("register: %s", w)
+    write_registration_csv(ctx.out / rf.REGISTRATION_CSV, res)  # warnings: logged by register
     return {
         "G_computed": res.G_computed,
         "G_measured": res.G_measured,
