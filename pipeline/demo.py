@@ -35,10 +35,17 @@ def crack_table(run_root: Path) -> list[dict]:
             "length_um": round(c["length_um"], 1),
             "inclination_deg": round(c["plane"]["inclination_deg"], 1),
             "plane": "(" + " ".join(str(v) for v in c["plane"]["nearest_hkl"]) + ")",
-            "margin": None if a.get("margin") is None else round(a["margin"], 2),
+            "margin": _margin(a.get("margin")),
             "verdict": a.get("verdict", "-"),
         })
     return rows
+
+
+def _margin(m: float | None) -> str | None:
+    """Margins far above 1 carry no information beyond "large"; show them as the report does."""
+    if m is None:
+        return None
+    return "> 100" if m > 100 else f"{m:.2f}"
 
 
 def run_demo(out: str | Path) -> str:

@@ -64,6 +64,8 @@ def write_bytes_atomic(path: str | Path, data: bytes) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
+        # mkstemp makes 0600 files; run folders are shared with colleagues and the viewer.
+        os.fchmod(fd, 0o644)
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()
