@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import contextlib
 import logging
+import re
 import sys
 import tempfile
 import time
@@ -51,11 +52,19 @@ def use_scheduler(cfg=None) -> Iterator[Any]:
     scheduler = "threads" if cfg is None else cfg.scheduler
     prev = dict(_state)
     cluster = client = None
+    bind = ""  # where the dashboard of a cluster started here listens
     try:
         if scheduler in ("threads", "processes"):
             _state.update(client=None, scheduler=scheduler, workers=None if cfg is None else cfg.workers)
-            with dask.config.set(scheduler=scheduler, num_workers=None if cfg is None else cfg.workers):
-                yield None
+            settings: dict[str, Any] = {"scheduler": scheduler, "num_workers": None if cfg is None else cfg.workers}
+            with contextlib.ExitStack() as stack:
+                if scheduler == "processes":
+                    # One pool for the whole block: without it dask spawns a fresh pool per
+                    # compute() call, and every spawned process re-imports numpy/scipy/skimage
+                    # (the 48-frame test run: 74 s with a pool per call, 25 s with one).
+                    settings["pool"] = stack.enter_context(_process_pool(cfg.workers if cfg else None))
+                with dask.config.set(settings):
+                    yield None
             return
         import distributed
 
@@ -68,22 +77,25 @@ def use_scheduler(cfg=None) -> Iterator[Any]:
                 dashboard_address=cfg.dashboard_address,
                 silence_logs=logging.ERROR,
             )
+            bind = cfg.dashboard_address
             client = distributed.Client(cluster)
         elif scheduler == "slurm":
             from dask_jobqueue import SLURMCluster
 
-            opts = {"cores": cfg.threads_per_worker, "memory": cfg.memory_limit, "processes": 1}
-            opts.update(cfg.slurm)
-            # Worker logs would otherwise land in the current folder, one file per job.
-            opts.setdefault("log_directory", str(Path(tempfile.gettempdir()) / "crackstack-slurm-logs"))
-            opts.setdefault("scheduler_options", {"dashboard_address": cfg.dashboard_address})
+            opts, adapt = slurm_cluster_options(cfg)
+            bind = str(opts["scheduler_options"].get("dashboard_address", ""))
             cluster = SLURMCluster(**opts)
-            cluster.scale(jobs=cfg.workers)
+            if adapt:
+                cluster.adapt(**adapt)
+            else:
+                cluster.scale(jobs=cfg.workers)
             client = distributed.Client(cluster)
-            client.wait_for_workers(1, timeout=120)
+            # An adaptive cluster without a minimum starts jobs only once there is work.
+            if not adapt or adapt.get("minimum_jobs", adapt.get("minimum", 0)) > 0:
+                client.wait_for_workers(1, timeout=120)
         elif scheduler == "address":
             client = distributed.Client(cfg.address)
-        log.info("dask dashboard: %s", getattr(client, "dashboard_link", "n/a"))
+        log.info("dask dashboard: %s", _dashboard_link(client, bind))
         _state.update(client=client, scheduler=scheduler, workers=cfg.workers)
         yield client
     finally:
@@ -92,6 +104,57 @@ def use_scheduler(cfg=None) -> Iterator[Any]:
         if cluster is not None:
             cluster.close()
         _state.update(prev)
+
+
+def _dashboard_link(client, bind: str) -> str:
+    """The dashboard URL, with the host it is bound to.
+
+    ``Client.dashboard_link`` names the scheduler's host address even when the dashboard listens
+    on ``127.0.0.1`` only (SLURMCluster: ``http://<node ip>:8787/status``, which does not answer);
+    for a cluster started here the bind host (``bind``, ``host:port``) is the one to print.
+    """
+    link = str(getattr(client, "dashboard_link", "n/a"))
+    host = bind.rpartition(":")[0].strip("[]")
+    if host not in ("", "0.0.0.0", "::", "*"):
+        host = f"[{host}]" if ":" in host else host
+        link = re.sub(r"^(\w+://)(\[[^\]]*\]|[^/:]+)", lambda m: m.group(1) + host, link, count=1)
+    return link
+
+
+def slurm_cluster_options(cfg) -> tuple[dict[str, Any], dict[str, Any] | None]:
+    """SLURMCluster keyword arguments for a ``compute`` section, and adaptive bounds or None.
+
+    ``cores = threads_per_worker`` and ``memory = memory_limit`` per job (one worker process
+    each) unless ``compute.slurm`` says otherwise; every other ``compute.slurm`` key goes to
+    SLURMCluster as is, except ``adapt`` (``{minimum_jobs, maximum_jobs}``), which replaces the
+    fixed ``workers`` job count by ``cluster.adapt(...)``.
+    """
+    opts = {"cores": cfg.threads_per_worker, "memory": cfg.memory_limit, "processes": 1}
+    opts.update(cfg.slurm)
+    adapt = opts.pop("adapt", None)
+    # Worker logs would otherwise land in the current folder, one file per job.
+    opts.setdefault("log_directory", str(Path(tempfile.gettempdir()) / "crackstack-slurm-logs"))
+    opts.setdefault("scheduler_options", {"dashboard_address": cfg.dashboard_address})
+    return opts, (dict(adapt) if adapt else None)
+
+
+@contextlib.contextmanager
+def _process_pool(workers: int | None) -> Iterator[Any]:
+    """The process pool dask's ``processes`` scheduler would make per call, made once."""
+    import os
+    from concurrent.futures import ProcessPoolExecutor
+
+    from dask.multiprocessing import get_context, initialize_worker_process
+
+    # As dask does for its own pools: a fixed hash seed so hashing agrees across processes.
+    if os.environ.get("PYTHONHASHSEED") in (None, "0"):
+        os.environ["PYTHONHASHSEED"] = "6640"
+    pool = ProcessPoolExecutor(workers or os.cpu_count() or 1, mp_context=get_context(),
+                               initializer=initialize_worker_process)
+    try:
+        yield pool
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
 
 
 def n_workers() -> int:
@@ -166,7 +229,12 @@ def run_tasks(tasks: Sequence[Any], desc: str) -> list[Any]:
                 except Exception as exc:
                     for f in futures:
                         f.cancel()
-                    raise type(exc)(f"{desc}: task {fut.key} failed: {exc}") from exc
+                    msg = f"{desc}: task {fut.key} failed: {exc}"
+                    try:  # the same type (InputError stays exit code 2), when it takes a message
+                        named = type(exc)(msg)
+                    except Exception:  # e.g. JSONDecodeError(msg, doc, pos), KilledWorker
+                        named = RuntimeError(msg)
+                    raise named from exc
                 bar.advance()
             return results
         from dask.callbacks import Callback

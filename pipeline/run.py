@@ -250,13 +250,16 @@ def prepare(
     record = ctx.run.read_run() if out.exists() else {}
     if record:
         old_inputs = {k: record.get(k) for k in new_inputs}
-        diff = changed_keys(old_inputs, new_inputs)
+        # Where the work runs does not change the outputs (same results on every scheduler), so
+        # a run may be continued with another compute section (SLURM, then a workstation).
+        diff = [k for k in changed_keys(old_inputs, new_inputs) if not k.startswith("config.compute.")]
         if diff:
             shown = ", ".join(diff[:6]) + (f" and {len(diff) - 6} more" if len(diff) > 6 else "")
             raise InputError(
                 f"{out}: this run folder was made with different inputs ({shown} changed); "
                 "use a new --out folder, or restore the old values to continue it"
             )
+        record["config"]["compute"] = new_inputs["config"]["compute"]  # the one in use now
     else:
         out.mkdir(parents=True, exist_ok=True)
         record = {

@@ -6,6 +6,13 @@ acquisition.yaml with nested overrides, and a writer for small TIFF frame series
 
 from __future__ import annotations
 
+import os
+
+# Before numpy is imported: no threaded BLAS under Dask (see pipeline/__init__.py).
+for _v in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_v, "1")
+
+
 import copy
 from collections.abc import Callable
 from pathlib import Path
@@ -107,3 +114,61 @@ def tiff_acquisition(tmp_path: Path) -> tuple[Path, np.ndarray]:
     Returns (path to acquisition.yaml, frame stack)."""
     stack = _write_tiff_frames(tmp_path)
     return _write_acquisition(tmp_path), stack
+
+
+# --- a small rendered series and its threads run (scheduler, resume and SLURM tests) -------------
+
+
+@pytest.fixture(scope="session")
+def small_series(tmp_path_factory) -> Path:
+    """acquisition.yaml of the small invented series of ``tests/_smallrun.py`` (rendered once)."""
+    import _smallrun
+
+    return _smallrun.render(tmp_path_factory.mktemp("small-series"))
+
+
+@pytest.fixture(scope="session")
+def small_reference(small_series, tmp_path_factory) -> Path:
+    """Run folder of every stage of ``small_series`` on the threads scheduler (2 workers): the
+    reference the other schedulers, killed and continued runs are compared with. Read-only:
+    tests that run again copy it first."""
+    import _smallrun
+
+    from pipeline.run import run_pipeline
+
+    root = tmp_path_factory.mktemp("small-reference")
+    cfg = _smallrun.write_config(root / "threads.yaml", {"scheduler": "threads", "workers": 2})
+    run_pipeline(small_series, root / "run", cfg)
+    return root / "run"
+
+
+def slurm_idle_reason() -> str | None:
+    """Why SLURM tests cannot run here (no ``sinfo``, no idle node), or None when they can."""
+    import shutil
+    import subprocess
+
+    if shutil.which("sinfo") is None:
+        return "no sinfo on PATH (SLURM not installed)"
+    try:
+        out = subprocess.run(["sinfo", "-h", "-o", "%T"], capture_output=True, text=True, timeout=10)
+    except (OSError, subprocess.TimeoutExpired) as exc:
+        return f"sinfo failed: {exc}"
+    if "idle" not in out.stdout.split():
+        return f"no idle SLURM node (sinfo: {out.stdout.strip() or out.stderr.strip()})"
+    return None
+
+
+@pytest.fixture
+def slurm_node() -> None:
+    """Skip (saying why) unless an idle SLURM node exists (``.ci/run`` starts one). A node still
+    busy with the jobs of the previous test (``completing``, ``mixed``, ``allocated``) gets up
+    to 30 s to become idle."""
+    import time
+
+    why = slurm_idle_reason()
+    deadline = time.monotonic() + 30
+    while why and any(s in why for s in ("completing", "mixed", "allocated")) and time.monotonic() < deadline:
+        time.sleep(0.5)
+        why = slurm_idle_reason()
+    if why:
+        pytest.skip(why)

@@ -1,0 +1,249 @@
+"""``crackstack bench`` cases for where the work runs: 1 -> 2 worker scaling, local-cluster overhead.
+
+Figures (each the best of a few interleaved repeats, so a busy moment on a shared machine counts
+as little as possible; the 1-minute load average is logged with every figure):
+
+- **machine check**: how much faster two independent pure-Python loops run in two processes
+  than one (before and after the scaling runs, the lower value). Target >= 1.9: below it, other
+  programs share the two cores and the speed-ups below measure the machine, not crackstack.
+
+- **reconstruct speed-up, 2 workers / 1** (threads scheduler, ``compute.workers``), on an
+  invented series made by :func:`pipeline.bench.write_series`, written in x slabs of
+  ``chunk_x`` voxels so both workers have work. Target >= 1.7 (the issue's figure for this
+  2-core machine: 2.0 is the ideal, 0.3 is left for the serial parts: grid set-up, pyramid,
+  the Python between NumPy calls that holds the GIL).
+- **segment speed-up, 2 workers / 1**, on that reconstructed volume (in memory, so the figure is
+  the computation, not the disk), in 4-8 compute blocks. Target >= 1.7 for the same reason.
+- **local-cluster / threads wall time** of the same small run (register .. measure of the
+  invented 48-frame series of :func:`small_scenario`), stage time only. Target <= 1.3: a
+  distributed scheduler costs about 1 ms per task plus pickling of task inputs and results
+  between processes; on ~100 tasks of 10-500 ms that must stay a small fraction, and 30 % is
+  the point where threads would be the better default for a workstation run.
+- **local-cluster start and stop**, seconds (paid once per run). Target <= 5 s: about 1 s was
+  measured for 2 workers on this machine (ECOSYSTEM.md section 3.5); 5 s leaves room for a
+  loaded machine and stays small against any real run.
+
+``--quick`` uses a 48-frame 256 x 512 series and one small run per scheduler (about a minute);
+the full run a 192-frame 512 x 1024 series and two small runs each.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import os
+import shutil
+import time
+from pathlib import Path
+
+import numpy as np
+import yaml
+
+from pipeline.bench import BenchContext, Row, _make_bench_series, figure, register_case
+
+log = logging.getLogger(__name__)
+
+#: (frames, rows, cols, slab width in x voxels, repeats per worker count)
+SCALING_QUICK = (48, 256, 512, 8, 2)
+SCALING_FULL = (192, 512, 1024, 16, 3)
+#: The stages that make defects.json (assess needs a recipe, report adds nothing to time here).
+TO_MEASURE = ("register", "reconstruct", "segment", "measure")
+
+
+def _load() -> float:
+    return round(os.getloadavg()[0], 2)
+
+
+def _spin(n: int) -> float:
+    """Seconds of a pure-Python loop of ``n`` steps (CPU only, no memory traffic)."""
+    t0 = time.perf_counter()
+    s = 0
+    for i in range(n):
+        s += i * i
+    return time.perf_counter() - t0
+
+
+def machine_speedup(n: int) -> float:
+    """What this machine gives two independent processes right now: the time of one loop alone
+    over the time of two at once (x 2). 2.0 on two free cores; less when other programs share
+    them, and then no scaling figure can reach its target either."""
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    with ProcessPoolExecutor(2, mp_context=multiprocessing.get_context("spawn")) as pool:
+        list(pool.map(_spin, [1000, 1000]))  # start both processes first
+        one = min(pool.submit(_spin, n).result() for _ in range(2))
+        t0 = time.perf_counter()
+        list(pool.map(_spin, [n, n]))
+        both = time.perf_counter() - t0
+    return 2 * one / both
+
+
+# ---------------------------------------------------------------------------------------------
+# 1 -> 2 workers
+
+
+def _time_reconstruct(acq_path: Path, out: Path, workers: int, chunk_x: int) -> float:
+    """Wall time of reconstruct_volume (corrected series, registration from the file) on the
+    threads scheduler with ``workers`` threads."""
+    from pipeline.compute import use_scheduler
+    from pipeline.config import ComputeConfig, CorrectConfig, ReconstructConfig, load_acquisition
+    from pipeline.correct import correct_series
+    from pipeline.geometry import Geometry
+    from pipeline.ingest import open_series
+    from pipeline.reconstruct import reconstruct_volume
+    from pipeline.register import read_registration_csv
+
+    acq, base = load_acquisition(acq_path)
+    geom = Geometry.from_acquisition(acq)
+    series = open_series(acq, base)
+    reg = read_registration_csv(acq_path.parent / "registration.csv")
+    for p in (out, out.parent / f".{out.name}.progress"):
+        shutil.rmtree(p, ignore_errors=True)  # a fresh volume: nothing to resume
+    with use_scheduler(ComputeConfig(scheduler="threads", workers=workers)):
+        corrected = correct_series(series, CorrectConfig())
+        t0 = time.perf_counter()
+        reconstruct_volume(
+            corrected, geom, series.positions_um, reg, ReconstructConfig(chunk_voxels=(64, 128, chunk_x)), out
+        )
+        return time.perf_counter() - t0
+
+
+def _time_segment(volume: np.ndarray, voxel_um, workers: int, blocks_y: int) -> float:
+    from pipeline.compute import use_scheduler
+    from pipeline.config import ComputeConfig, SegmentConfig
+    from pipeline.segment import segment_array
+
+    nz, ny, nx = volume.shape
+    # ceil(n / k) pieces: the last one is never thinner than the others by more than k voxels
+    chunks = (math.ceil(nz / 2), math.ceil(ny / blocks_y), nx)
+    with use_scheduler(ComputeConfig(scheduler="threads", workers=workers)):
+        t0 = time.perf_counter()
+        segment_array(volume, voxel_um=voxel_um, cfg=SegmentConfig(), chunks=chunks)
+        return time.perf_counter() - t0
+
+
+@register_case(name="cluster_scaling")
+def bench_scaling(ctx: BenchContext) -> list[Row]:
+    """Speed-up of reconstruct and segment from 1 to 2 workers."""
+    from pipeline import omezarr
+    from pipeline.compute import set_quiet
+
+    n, rows, cols, chunk_x, repeats = SCALING_QUICK if ctx.quick else SCALING_FULL
+    spins = 5_000_000 if ctx.quick else 20_000_000
+    machine = [machine_speedup(spins)]
+    data = ctx.workdir / "scaling"
+    acq_path, _ = _make_bench_series(data, n, rows, cols)
+    set_quiet(True)
+    # Read every frame once first, so the 1-worker run does not pay the cold page cache alone.
+    _time_reconstruct(acq_path, data / "warm.ome.zarr", 2, chunk_x)
+    rec: dict[int, list[float]] = {1: [], 2: []}
+    for _ in range(repeats):
+        for w in (1, 2):
+            rec[w].append(_time_reconstruct(acq_path, data / f"vol{w}.ome.zarr", w, chunk_x))
+    arr, meta = omezarr.open_image(data / "vol2.ome.zarr")
+    volume = np.asarray(arr.compute(), np.float32)
+    voxel = tuple(float(v) for v in meta["voxel_um"])
+    blocks_y = 2 if ctx.quick else 4
+    seg: dict[int, list[float]] = {1: [], 2: []}
+    for _ in range(repeats):
+        for w in (1, 2):
+            seg[w].append(_time_segment(volume, voxel, w, blocks_y))
+    machine.append(machine_speedup(spins))
+    load = _load()
+    log.info("bench cluster_scaling: reconstruct %s, segment %s (s per worker count), machine 2-process "
+             "speed-up %s, load %.2f", rec, seg, machine, load)
+    size = f"{n} x {rows} x {cols} series"
+    return [
+        # Not a property of crackstack: says whether the two figures below could be measured.
+        {**figure("machine check: 2 free cores (2 CPU loops / 1)", min(machine), ">= 1.9", "x"),
+         "before_after": machine, "load_1min": load},
+        {**figure(f"reconstruct speed-up 2/1 workers ({size})", min(rec[1]) / min(rec[2]), ">= 1.7", "x"),
+         "seconds": {str(k): v for k, v in rec.items()}, "load_1min": load},
+        {**figure(f"segment speed-up 2/1 workers ({'x'.join(map(str, volume.shape))} volume)",
+                  min(seg[1]) / min(seg[2]), ">= 1.7", "x"),
+         "seconds": {str(k): v for k, v in seg.items()}, "load_1min": load},
+    ]
+
+
+# ---------------------------------------------------------------------------------------------
+# local-cluster against threads
+
+
+def small_scenario():
+    """The demo scenario shrunk to a small run: 48 frames of 64 x 128 px (0.8 um pixels) of a
+    200 um wafer with one surface crack and one dislocation loop (demo contrast and instrument).
+    Also the data of the scheduler and resume tests (``tests/_smallrun.py``)."""
+    import synthetic
+
+    d = synthetic.load_scenario(synthetic.demo_scenario_path()).model_dump(mode="json")
+    d["name"] = "small scheduler scenario (invented)"
+    d["wafer"]["thickness_um"] = 200.0
+    d["acquisition"]["scan"] = {"start_um": 0.0, "step_um": 4.0, "n_frames": 48}
+    d["acquisition"]["frame"] = {"rows": 64, "cols": 128, "margin_px": 16, "origin_row_px": 0}
+    d["instrument"].update(dropped_frames=[], corrupt_frames=[], hot_pixels=5)
+    d["defects"] = [
+        {"type": "crack", "name": "surface crack", "plane": {"hkl": [1, -1, 0]},
+         "start": "surface_top", "a_um": 60, "c_um": 50, "position_um": [95, 25, 0]},
+        {"type": "loop", "name": "loop", "plane": [1, 1, 1], "center_um": [150, 30, 120],
+         "radius_um": 10},
+    ]
+    return synthetic.Scenario.model_validate(d)
+
+
+def _small_run(acq: Path, out: Path, scheduler: str) -> tuple[float, float]:
+    """(wall s of run_pipeline, sum of its stage times s) for register .. measure."""
+    from pipeline.run import run_pipeline
+
+    cfg = out.parent / f"{out.name}.yaml"
+    cfg.write_text(yaml.safe_dump({
+        "reconstruct": {"chunk_voxels": [64, 64, 4]},  # 15 slab tasks, as in the tests
+        "compute": {"scheduler": scheduler, "workers": 2, "memory_limit": "2GiB"},
+    }))
+    t0 = time.perf_counter()
+    record = run_pipeline(acq, out, cfg, stages=TO_MEASURE)
+    wall = time.perf_counter() - t0
+    return wall, sum(record["stages"][s]["elapsed_s"] for s in TO_MEASURE)
+
+
+def _cluster_start_stop_s() -> float:
+    from pipeline.compute import use_scheduler
+    from pipeline.config import ComputeConfig
+
+    t0 = time.perf_counter()
+    with use_scheduler(ComputeConfig(scheduler="local-cluster", workers=2, memory_limit="2GiB")):
+        pass
+    return time.perf_counter() - t0
+
+
+@register_case(name="cluster_overhead")
+def bench_overhead(ctx: BenchContext) -> list[Row]:
+    """local-cluster against threads on the same small run; the cluster's start and stop."""
+    import synthetic
+    from pipeline.compute import set_quiet
+
+    set_quiet(True)
+    data = ctx.workdir / "small"
+    synthetic.render_series(small_scenario(), data / "series")
+    acq = data / "series" / "acquisition.yaml"
+    repeats = 1 if ctx.quick else 2
+    times: dict[str, list[tuple[float, float]]] = {"threads": [], "local-cluster": []}
+    for i in range(repeats):
+        for scheduler in times:
+            times[scheduler].append(_small_run(acq, data / f"{scheduler}-{i}", scheduler))
+    start = min(_cluster_start_stop_s() for _ in range(2))
+    same = all(
+        (data / f"local-cluster-{i}" / "defects.json").read_bytes() == (data / "threads-0" / "defects.json").read_bytes()
+        for i in range(repeats)
+    )
+    load = _load()
+    log.info("bench cluster_overhead: (wall s, stage s) %s, start+stop %.2f s, same defects %s, load %.2f",
+             times, start, same, load)
+    stages = {k: min(s for _, s in v) for k, v in times.items()}
+    wall = {k: min(w for w, _ in v) for k, v in times.items()}
+    ratio = stages["local-cluster"] / stages["threads"]
+    row = {**figure("local-cluster / threads, small run, stage time", ratio, "<= 1.3", "x"),
+           "wall_s": wall, "stage_s": stages, "same_defects_json": same, "load_1min": load}
+    if not same:  # a faster wrong answer is no answer
+        row.update(passed=False, error="defects.json differs between local-cluster and threads")
+    return [row, {**figure("local-cluster start + stop (2 workers)", start, "<= 5", "s"), "load_1min": load}]
