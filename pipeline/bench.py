@@ -42,7 +42,7 @@ Row = dict[str, Any]
 CaseFn = Callable[["BenchContext"], list[Row]]
 _CASES: list[tuple[str, CaseFn]] = []
 #: Modules imported by :func:`main` so that their ``@register_case`` functions are known.
-CASE_MODULES: list[str] = ["pipeline.bench", "pipeline.bench_cluster"]
+CASE_MODULES: list[str] = ["pipeline.bench", "pipeline.bench_cluster", "viewer_plugins._bench"]
 
 
 # ---------------------------------------------------------------------------------------------
@@ -271,7 +271,10 @@ def main(
 
     out = out or sys.stdout
     for mod in CASE_MODULES:
-        importlib.import_module(mod)
+        try:
+            importlib.import_module(mod)
+        except ImportError as exc:  # e.g. the viewer extra is not installed
+            log.warning("bench cases of %s not available: %s", mod, exc)
     todo = list(_CASES if cases is None else cases)
     tmp = Path(tempfile.mkdtemp(prefix="crackstack-bench-", dir=workdir))
     ctx = BenchContext(quick=quick, workdir=tmp)
@@ -454,3 +457,11 @@ if __name__ == "__main__":  # subprocess entry of the bench (not a user command)
         _child_reconstruct(Path(sys.argv[2]), Path(sys.argv[3]), Path(sys.argv[4]))
     else:
         sys.exit("usage: python -m pipeline.bench --child-reconstruct ACQ OUT RESULT")
+
+
+@register_case(name="segment_sheet_filter")
+def _case_segment(ctx: BenchContext) -> list[Row]:
+    """Our chunked sheet filter vs scikit-image's Hessian on the whole array (pipeline.segment)."""
+    from pipeline.segment import bench_cases
+
+    return bench_cases(ctx.quick)
