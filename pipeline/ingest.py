@@ -391,7 +391,8 @@ def _open_tiff_series(
     kind = "multipage_tiff" if multipage and len(files) == 1 else "tiff_files"
     orientation = acq.detector.orientation
     reader = _TiffFrameReader(tuple(refs), info.dtype.str, orientation)
-    key = (refs, [(os.path.getsize(p), os.path.getmtime(p)) for p in files], orientation)
+    # model_dump: a pydantic model's dask token differs between processes; a dict's does not.
+    key = (refs, [(os.path.getsize(p), os.path.getmtime(p)) for p in files], orientation.model_dump())
     frames = _lazy_stack(
         reader, len(refs), _oriented_shape(info.shape, orientation), info.dtype, key
     )
@@ -432,7 +433,7 @@ def _open_hdf5(acq: Acquisition, base_dir: Path) -> tuple[da.Array, list[str]]:
     orientation = acq.detector.orientation
     name = _rel(path, base_dir)
     reader = _Hdf5FrameReader(str(path), dataset, dtype.str, orientation)
-    key = (str(path), dataset, os.path.getsize(path), os.path.getmtime(path), orientation)
+    key = (str(path), dataset, os.path.getsize(path), os.path.getmtime(path), orientation.model_dump())
     frames = _lazy_stack(reader, shape[0], _oriented_shape(shape[1:], orientation), dtype, key)
     return frames, [f"{name}:{dataset}[{k}]" for k in range(shape[0])]
 

@@ -259,6 +259,13 @@ def prepare(
                 f"{out}: this run folder was made with different inputs ({shown} changed); "
                 "use a new --out folder, or restore the old values to continue it"
             )
+        # Stage fingerprints use the recorded frames fingerprint, so changed input files must be
+        # caught here, or old outputs would pass for results of the new frames.
+        if record.get("frames_fingerprint") not in (None, _frames_fingerprint(acq, base_dir)):
+            raise InputError(
+                f"{out}: the input files in {base_dir} changed (names, sizes or modification "
+                "times) since this run folder was made; use a new --out folder"
+            )
         record["config"]["compute"] = new_inputs["config"]["compute"]  # the one in use now
     else:
         out.mkdir(parents=True, exist_ok=True)

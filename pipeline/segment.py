@@ -536,7 +536,8 @@ def _compute_chunks(shape, depth, chunks) -> tuple[tuple[int, ...], ...]:
         c = max(int(c), d, 1)
         sizes = [c] * (n // c) + ([n % c] if n % c else [])
         if len(sizes) > 1 and sizes[-1] < d:
-            sizes[-2] += sizes.pop()
+            last = sizes.pop()  # with two pieces, sizes[-2] would not survive the pop
+            sizes[-1] += last
         out.append(tuple(sizes))
     return tuple(out)
 

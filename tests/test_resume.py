@@ -20,6 +20,7 @@ from pathlib import Path
 import _smallrun
 import numpy as np
 import pytest
+import tifffile
 import zarr
 
 from pipeline import run as runmod
@@ -119,6 +120,23 @@ def test_changed_compute_section_continues_the_run(small_series, tmp_path):
     )
     with pytest.raises(InputError, match=r"config\.reconstruct\.levels"):
         runmod.prepare(small_series, out, third)
+
+
+def test_changed_input_frames_are_refused(small_series, tmp_path):
+    # The stage fingerprints include the input files' fingerprint recorded in run.json: a frame
+    # replaced after the run folder was made must not pass as the old one.
+    data = tmp_path / "data"
+    shutil.copytree(small_series.parent, data)  # copy2: sizes and modification times kept
+    out = tmp_path / "run"
+    runmod.prepare(data / "acquisition.yaml", out)
+    runmod.prepare(data / "acquisition.yaml", out)  # unchanged: accepted
+    frame = sorted(data.glob("frame_*.tif"))[7]
+    img = tifffile.imread(frame)
+    tifffile.imwrite(frame, img[::-1])  # same size; the time stamp says it changed
+    st = frame.stat()
+    os.utime(frame, ns=(st.st_atime_ns, st.st_mtime_ns + 10**10))
+    with pytest.raises(InputError, match="input files in .* changed"):
+        runmod.prepare(data / "acquisition.yaml", out)
 
 
 # --- an interrupted run continues ---------------------------------------------------------------
