@@ -36,6 +36,7 @@ Run ``python -m synthetic.evaluate --n 21 --out DIR`` (scans spread round-robin 
 from __future__ import annotations
 
 import argparse
+import importlib
 import logging
 import math
 import shutil
@@ -1172,6 +1173,10 @@ def evaluate(
     scans_dir.mkdir(parents=True, exist_ok=True)
     names = list(levels)
     records = []
+    # load the stage modules now, so that the digests name the code this process runs (a file
+    # edited later is not reloaded)
+    for name in _CODE:
+        importlib.import_module(f"pipeline.{name}")
     code_start = code_digests()
     for i in range(n_scenarios):
         name = names[i % len(names)]
@@ -1231,7 +1236,9 @@ def evaluate(
     code_end = code_digests()
     changed = sorted(k for k in code_end if code_start.get(k) != code_end[k])
     if changed:
-        log.warning("stage code changed during the evaluation: %s", ", ".join(changed))
+        log.warning(
+            "stage files edited during the evaluation (not reloaded): %s", ", ".join(changed)
+        )
     code = {"at_start": code_start, "changed_during_run": changed}
     return _write_outputs(out, records, levels, seed0, registration, code)
 
@@ -1315,7 +1322,8 @@ def _report_text(doc: dict) -> str:
         "Stage code (SHA-256, 12 digits) at the start: "
         + ", ".join(f"{k} {v}" for k, v in doc["code"].get("at_start", {}).items())
         + (
-            f"; changed during the run: {', '.join(doc['code']['changed_during_run'])}"
+            f"; files edited during the run (not reloaded, the run used the versions above): "
+            f"{', '.join(doc['code']['changed_during_run'])}"
             if doc["code"].get("changed_during_run")
             else ""
         )
