@@ -29,6 +29,10 @@ Definitions used in the table (also in ``docs/accuracy.md``):
   duplicates and misclassified loops or bands), ``edge`` (within ``NEAR_UM`` of the wafer edge),
   ``surface`` (reaching within two voxels of z = 0 or z = t) or ``fringes`` (in the interior,
   where the perfect-crystal fringes and noise are the only structure).
+- **Slip bands** are not scored by :func:`synthetic.score`; a found band with a ``center_um``
+  counts for a true one within half its extent and width plus ``NEAR_UM`` of its centre.
+- **Registration**: ``registration="truth"`` replaces the register stage by the exact frame
+  origins, which separates segment and measure errors from registration errors.
 
 Run ``python -m synthetic.evaluate --n 21 --out DIR`` (scans spread round-robin over the levels).
 """
