@@ -98,7 +98,7 @@ class Materials:
 
 def resolve_materials(overrides: MaterialOverrides, z_uvw) -> Materials:
     """Material data: the defaults with their sources, replaced where the recipe overrides them."""
-    E_vals = fr.youngs_modulus_GPa(_in_plane_directions(z_uvw))
+    E_vals = fr.youngs_modulus_GPa(fr.in_plane_directions(z_uvw))
     if overrides.E_GPa is not None:
         E_GPa = overrides.E_GPa
         E_info = {"value_GPa": E_GPa, "source": "recipe override"}
@@ -131,17 +131,6 @@ def resolve_materials(overrides: MaterialOverrides, z_uvw) -> Materials:
                                    conductivity_W_mK=overrides.conductivity_W_per_mK,
                                    heat_capacity_J_kgK=overrides.heat_capacity_J_per_kgK)
     return Materials(E_GPa * 1e9, E_info, strain, alpha_info, kic, thermal)
-
-
-def _in_plane_directions(z_uvw, n: int = 360) -> np.ndarray:
-    z = np.asarray(z_uvw, float)
-    z = z / np.linalg.norm(z)
-    trial = np.array([1.0, 0.0, 0.0]) if abs(z[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
-    e1 = np.cross(z, trial)
-    e1 /= np.linalg.norm(e1)
-    e2 = np.cross(z, e1)
-    psi = np.linspace(0.0, np.pi, n, endpoint=False)
-    return np.cos(psi)[:, None] * e1 + np.sin(psi)[:, None] * e2
 
 
 def _uvw(v) -> str:

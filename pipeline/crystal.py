@@ -35,6 +35,15 @@ def _unit(v: Sequence[float], what: str) -> np.ndarray:
     return a / n
 
 
+def unit(v: Sequence[float]) -> np.ndarray:
+    """``v / |v|`` as float64; raises ValueError for a zero vector."""
+    a = np.asarray(v, float)
+    n = float(np.linalg.norm(a))
+    if not np.isfinite(n) or n == 0:
+        raise ValueError(f"zero vector {list(np.ravel(a))} has no direction")
+    return a / n
+
+
 def orientation_matrix(z_uvw: Sequence[float], x_uvw: Sequence[float]) -> np.ndarray:
     """Rotation between the wafer frame and the crystal frame.
 
@@ -79,6 +88,68 @@ def crystal_to_wafer(
     """Components of a crystal-frame vector (or rows of vectors) in the wafer frame."""
     m = orientation_matrix(z_uvw, x_uvw)
     return np.asarray(v_crystal, float) @ m.T
+
+
+def _clean(v: np.ndarray) -> np.ndarray:
+    """Round-off below 1e-12 set to 0, so that exact zeros stay exact in the exports."""
+    v = np.array(v, float)
+    v[np.abs(v) < 1e-12] = 0.0
+    return v
+
+
+def to_wafer(m: np.ndarray, v_crystal: Sequence[float]) -> np.ndarray:
+    """Unit wafer-frame vector of a crystal direction (or plane normal [hkl]); ``m`` from
+    :func:`orientation_matrix`."""
+    return _clean(m @ unit(v_crystal))
+
+
+def to_crystal(m: np.ndarray, v_wafer: Sequence[float]) -> np.ndarray:
+    """Unit crystal-frame vector of a wafer-frame direction; ``m`` from :func:`orientation_matrix`."""
+    return _clean(m.T @ unit(v_wafer))
+
+
+def canonical_normal(n: Sequence[float]) -> np.ndarray:
+    """The sign of a plane normal fixed for reporting: ``n_z > 0``; for vertical planes the first
+    non-zero of ``n_x, n_y`` is positive (a plane and its negative normal are the same plane)."""
+    u = unit(n)
+    for comp in (u[2], u[0], u[1]):
+        if abs(comp) > 1e-12:
+            return u if comp > 0 else -u
+    return u
+
+
+def plane_angles(n_wafer: Sequence[float]) -> tuple[float, float]:
+    """Inclination and azimuth of a plane with normal ``n_wafer`` (SPEC section 7).
+
+    Returns
+    -------
+    inclination_deg : float
+        Angle between the plane and the wafer surface, 0-90 (90 = perpendicular to the surface).
+    azimuth_deg : float
+        Direction of the surface trace ``z x n``, from +x toward +y, in [0, 180); 0 for a plane
+        parallel to the surface (no trace).
+    """
+    n = unit(n_wafer)
+    incl = math.degrees(math.acos(min(1.0, abs(float(n[2])))))
+    tx, ty = -float(n[1]), float(n[0])  # trace = z x n
+    if math.hypot(tx, ty) < 1e-12:
+        return incl, 0.0
+    az = math.degrees(math.atan2(ty, tx)) % 180.0
+    return incl, 0.0 if az >= 180.0 - 1e-9 else az
+
+
+def primitive(hkl: Sequence[int]) -> tuple[int, int, int]:
+    """Miller indices divided by their greatest common divisor (``(2, 2, 0) -> (1, 1, 0)``)."""
+    h, k, l = (int(v) for v in hkl)
+    g = math.gcd(math.gcd(abs(h), abs(k)), abs(l))
+    if g == 0:
+        raise ValueError("(000) is not a plane")
+    return (h // g, k // g, l // g)
+
+
+def same_family(a: Sequence[int], b: Sequence[int]) -> bool:
+    """True when two Miller triples belong to one family ({111}, {110}, ...)."""
+    return sorted(abs(v) for v in primitive(a)) == sorted(abs(v) for v in primitive(b))
 
 
 def angle_between_planes_deg(hkl1: Sequence[int], hkl2: Sequence[int]) -> float:
@@ -180,3 +251,74 @@ def nearest_plane(
     h = np.asarray(best[2], float) / float(np.linalg.norm(best[2]))
     misfit = math.degrees(math.atan2(float(np.linalg.norm(np.cross(n_c, h))), abs(float(n_c @ h))))
     return best[2], best[3], misfit
+
+
+@lru_cache(maxsize=8)
+def _candidates(h_max: int) -> tuple[np.ndarray, np.ndarray]:
+    """Primitive (hkl) with |h|,|k|,|l| <= h_max, one of each +-pair, sorted by h^2+k^2+l^2."""
+    seen = set()
+    out = []
+    for hkl in itertools.product(range(-h_max, h_max + 1), repeat=3):
+        if hkl == (0, 0, 0):
+            continue
+        p = primitive(hkl)
+        neg = tuple(-v for v in p)
+        if p in seen or neg in seen:
+            continue
+        seen.add(p)
+        out.append(p)
+    out.sort(key=lambda p: (p[0] ** 2 + p[1] ** 2 + p[2] ** 2, tuple(-abs(v) for v in p)))
+    arr = np.array(out, float)
+    return np.array(out, int), arr / np.linalg.norm(arr, axis=1, keepdims=True)
+
+
+def nearest_hkl(n_crystal: Sequence[float], h_max: int = 3) -> tuple[tuple[int, int, int], float]:
+    """Nearest plane with indices up to ``h_max`` to a crystal-frame normal.
+
+    Unlike :func:`nearest_plane` (a fixed list of families, for measured planes) this searches
+    every primitive (hkl) with ``|h|, |k|, |l| <= h_max``: the synthetic ground truth names any
+    plane it is given. Largest ``|n . hkl|`` wins, ties (within 1e-9) go to the lowest
+    ``h^2+k^2+l^2``; the indices carry the sign that makes ``hkl . n > 0``.
+
+    Returns
+    -------
+    hkl : tuple of int
+    misfit_deg : float
+        Angle between ``n_crystal`` and the returned plane normal.
+    """
+    n = unit(n_crystal)
+    ints, units = _candidates(h_max)
+    cos = units @ n
+    best = int(np.argmax(np.abs(cos) - 1e-9 * np.arange(len(cos)) / len(cos)))
+    c = float(cos[best])
+    hkl = ints[best] if c >= 0 else -ints[best]
+    misfit = math.degrees(math.acos(min(1.0, abs(c))))
+    return (int(hkl[0]), int(hkl[1]), int(hkl[2])), (0.0 if misfit < 1e-6 else misfit)
+
+
+def plane_descriptor(n_wafer: Sequence[float], m: np.ndarray, hkl: Sequence[int] | None = None) -> dict:
+    """The ``plane`` object of the defect export (SPEC section 7) for an exactly known plane.
+
+    ``hkl``, when the plane was given by its Miller indices, is reported as ``nearest_hkl``
+    (reduced, signed like the reported normal) with misfit 0; otherwise the nearest plane with
+    indices up to 3 is searched (:func:`nearest_hkl`). ``fit_rms_um`` is 0 (the plane is known,
+    not fitted). ``m`` is the :func:`orientation_matrix`.
+    """
+    n = canonical_normal(n_wafer)
+    incl, az = plane_angles(n)
+    if hkl is not None:
+        p = np.array(primitive(hkl))
+        if float(to_wafer(m, p) @ n) < 0:
+            p = -p
+        hkl, misfit = (int(p[0]), int(p[1]), int(p[2])), 0.0
+    else:
+        hkl, misfit = nearest_hkl(to_crystal(m, n))
+    return {
+        "normal": [float(v) for v in n],
+        "inclination_deg": incl,
+        "azimuth_deg": az,
+        "nearest_hkl": list(hkl),
+        "family": family_name(hkl),
+        "misfit_deg": misfit,
+        "fit_rms_um": 0.0,
+    }

@@ -31,6 +31,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import special
 
+from pipeline import crystal
+
 # ---------------------------------------------------------------------------------------------
 # Material data with sources.
 
@@ -127,20 +129,17 @@ def poisson_ratio(load_crystal, lateral_crystal, c11_GPa: float = C11_GPA,
     return float(-(v @ eps @ v) / (u @ eps @ u))
 
 
-def orientation_matrix(z_uvw, x_uvw) -> np.ndarray:
-    """Columns: crystal-frame unit vectors of the wafer x, y, z axes (``v_c = A @ v_w``).
-
-    Wafer frame per SPEC section 3: ``crystal.z_uvw`` along +z, ``crystal.x_uvw`` along +x,
-    y = z cross x completes the right-handed set.
-    """
+def in_plane_directions(z_uvw, n: int = 360) -> np.ndarray:
+    """``n`` unit directions (crystal frame) evenly over a half turn in the plane normal to
+    ``z_uvw``; a half turn suffices for properties even in the direction (``E(d) = E(-d)``)."""
     z = np.asarray(z_uvw, float)
-    x = np.asarray(x_uvw, float)
     z = z / np.linalg.norm(z)
-    x = x / np.linalg.norm(x)
-    if abs(float(z @ x)) > 1e-9:
-        raise ValueError(f"x_uvw {list(x_uvw)} is not perpendicular to z_uvw {list(z_uvw)}")
-    y = np.cross(z, x)
-    return np.column_stack([x, y, z])
+    trial = np.array([1.0, 0.0, 0.0]) if abs(z[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
+    e1 = np.cross(z, trial)
+    e1 /= np.linalg.norm(e1)
+    e2 = np.cross(z, e1)
+    psi = np.linspace(0.0, np.pi, n, endpoint=False)
+    return np.cos(psi)[:, None] * e1 + np.sin(psi)[:, None] * e2
 
 
 def in_plane_mean_modulus_GPa(z_uvw, *, n_angles: int = 720) -> float:
@@ -149,15 +148,7 @@ def in_plane_mean_modulus_GPa(z_uvw, *, n_angles: int = 720) -> float:
     The thin-disk solution is isotropic; this average is our stand-in for an anisotropic wafer
     (148.3 GPa for (001), 169.1 GPa for the isotropic (111) plane).
     """
-    z = np.asarray(z_uvw, float)
-    z = z / np.linalg.norm(z)
-    trial = np.array([1.0, 0.0, 0.0]) if abs(z[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
-    e1 = np.cross(z, trial)
-    e1 /= np.linalg.norm(e1)
-    e2 = np.cross(z, e1)
-    psi = np.linspace(0.0, np.pi, n_angles, endpoint=False)  # E(d) = E(-d): half turn suffices
-    d = np.cos(psi)[:, None] * e1 + np.sin(psi)[:, None] * e2
-    return float(np.mean(youngs_modulus_GPa(d)))
+    return float(np.mean(youngs_modulus_GPa(in_plane_directions(z_uvw, n_angles))))
 
 
 def family_of(hkl) -> str:
@@ -494,12 +485,12 @@ def polar_stress_in_crystal(sigma_r_Pa, sigma_theta_Pa, angle_deg: float, z_uvw,
     """Plane-stress polar tensor at azimuth ``angle_deg`` rotated into crystal axes, (..., 3, 3).
 
     Wafer frame: ``sigma = sigma_r e_r e_r + sigma_theta e_theta e_theta`` with
-    ``e_r = (cos a, sin a, 0)``; crystal frame ``A sigma A^T`` (:func:`orientation_matrix`).
+    ``e_r = (cos a, sin a, 0)``; crystal frame ``A sigma A^T`` (:func:`pipeline.crystal.orientation_matrix`, transposed).
     """
     a = math.radians(angle_deg)
     e_r = np.array([math.cos(a), math.sin(a), 0.0])
     e_t = np.array([-math.sin(a), math.cos(a), 0.0])
-    A = orientation_matrix(z_uvw, x_uvw)
+    A = crystal.orientation_matrix(z_uvw, x_uvw).T  # columns: wafer axes in the crystal frame
     er_c, et_c = A @ e_r, A @ e_t
     sr = np.asarray(sigma_r_Pa, float)[..., None, None]
     st = np.asarray(sigma_theta_Pa, float)[..., None, None]
@@ -515,7 +506,7 @@ def slip_factors(angle_deg: float, z_uvw, x_uvw) -> tuple[np.ndarray, np.ndarray
     :func:`polar_stress_in_crystal`.
     """
     a = math.radians(angle_deg)
-    A = orientation_matrix(z_uvw, x_uvw)
+    A = crystal.orientation_matrix(z_uvw, x_uvw).T  # columns: wafer axes in the crystal frame
     er_c = A @ np.array([math.cos(a), math.sin(a), 0.0])
     et_c = A @ np.array([-math.sin(a), math.cos(a), 0.0])
     n, b, _ = slip_systems()

@@ -1753,13 +1753,14 @@ def _registration_section(inp: Inputs, figs: _Figures) -> str:
         out.append(_kv(rows))
     warnings = res.get("warnings") or []
     if warnings:
-        out.append(
-            "<p><b>Warnings from registration:</b></p><ul>"
-            + "".join(f"<li>{_esc(w)}</li>" for w in warnings)
-            + "</ul>"
-        )
+        out.append(_bullets("Warnings from registration:", warnings))
     out.append("</section>")
     return "".join(out)
+
+
+def _bullets(title: str, items: list[str]) -> str:
+    """A bold title and an HTML list of escaped items."""
+    return f"<p><b>{_esc(title)}</b></p><ul>" + "".join(f"<li>{_esc(i)}</li>" for i in items) + "</ul>"
 
 
 def _flatten(d: Any, prefix: str = "") -> list[tuple[str, Any]]:
@@ -2009,11 +2010,7 @@ def _assessment_section(inp: Inputs, figs: _Figures) -> str:
     theirs = [theirs] if isinstance(theirs, str) else [str(c) for c in theirs if c]
     extra = [c for c in theirs if c not in own]
     if extra:
-        out.append(
-            "<p><b>Cautions from the assessment:</b></p><ul>"
-            + "".join(f"<li>{_esc(c)}</li>" for c in extra)
-            + "</ul>"
-        )
+        out.append(_bullets("Cautions from the assessment:", extra))
     out.append("</section>")
     return "".join(out)
 

@@ -22,8 +22,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from pipeline import crystal as cx
 from pipeline.errors import InputError
-from synthetic import crystal as cx
 from synthetic.scenario import (
     CrackSpec,
     FeatureContrast,

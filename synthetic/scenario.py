@@ -17,6 +17,7 @@ from typing import Annotated, Any, Literal
 import numpy as np
 from pydantic import Field, field_validator, model_validator
 
+from pipeline import crystal as cx
 from pipeline.config import (
     Acquisition,
     Beam,
@@ -32,7 +33,6 @@ from pipeline.config import (
 )
 from pipeline.errors import InputError
 from pipeline.geometry import Geometry
-from synthetic import crystal as cx
 
 Float3 = tuple[float, float, float]
 Float2 = tuple[float, float]

@@ -19,8 +19,8 @@ from typing import Any
 import numpy as np
 from scipy.optimize import linear_sum_assignment
 
+from pipeline.crystal import same_family
 from pipeline.runfolder import validate_defects
-from synthetic.crystal import same_family
 
 _FORBIDDEN = 1e12
 
@@ -78,6 +78,24 @@ def _detection(n_found: int, n_true: int, tp: int) -> dict[str, Any]:
     return {"tp": tp, "fp": fp, "fn": fn, "recall": recall, "precision": precision, "f1": f1}
 
 
+def _result(
+    found: list[dict], truth: list[dict], pairs: list, matches: list[dict], error_keys: tuple[str, ...]
+) -> dict[str, Any]:
+    """Detection counts, the matches, the unpaired ids and a summary of each error key."""
+    paired_f = {i for i, _, _ in pairs}
+    paired_t = {j for _, j, _ in pairs}
+    out = _detection(len(found), len(truth), len(pairs))
+    out.update(
+        {
+            "matches": matches,
+            "missed_ids": [t["id"] for j, t in enumerate(truth) if j not in paired_t],
+            "false_ids": [f["id"] for i, f in enumerate(found) if i not in paired_f],
+            "errors": {key: _summary([m[key] for m in matches]) for key in error_keys},
+        }
+    )
+    return out
+
+
 def _score_cracks(found: list[dict], truth: list[dict], match_um: float) -> dict:
     pairs = _pair(found, truth, "centroid_um", match_um)
     matches = []
@@ -102,29 +120,13 @@ def _score_cracks(found: list[dict], truth: list[dict], match_um: float) -> dict
                 ),
             }
         )
-    paired_f = {i for i, _, _ in pairs}
-    paired_t = {j for _, j, _ in pairs}
-    out = _detection(len(found), len(truth), len(pairs))
-    out.update(
-        {
-            "matches": matches,
-            "missed_ids": [t["id"] for j, t in enumerate(truth) if j not in paired_t],
-            "false_ids": [f["id"] for i, f in enumerate(found) if i not in paired_f],
-            "errors": {
-                key: _summary([m[key] for m in matches])
-                for key in (
-                    "distance_um",
-                    "depth_error_um",
-                    "length_error_um",
-                    "inclination_error_deg",
-                    "azimuth_error_deg",
-                    "normal_angle_deg",
-                )
-            },
-            "plane_family_right_fraction": (
-                sum(m["plane_family_right"] for m in matches) / len(matches) if matches else None
-            ),
-        }
+    out = _result(
+        found, truth, pairs, matches,
+        ("distance_um", "depth_error_um", "length_error_um", "inclination_error_deg",
+         "azimuth_error_deg", "normal_angle_deg"),
+    )
+    out["plane_family_right_fraction"] = (
+        sum(m["plane_family_right"] for m in matches) / len(matches) if matches else None
     )
     return out
 
@@ -146,21 +148,7 @@ def _score_loops(found: list[dict], truth: list[dict], match_um: float) -> dict:
                 ),
             }
         )
-    paired_f = {i for i, _, _ in pairs}
-    paired_t = {j for _, j, _ in pairs}
-    out = _detection(len(found), len(truth), len(pairs))
-    out.update(
-        {
-            "matches": matches,
-            "missed_ids": [t["id"] for j, t in enumerate(truth) if j not in paired_t],
-            "false_ids": [f["id"] for i, f in enumerate(found) if i not in paired_f],
-            "errors": {
-                key: _summary([m[key] for m in matches])
-                for key in ("distance_um", "diameter_error_um", "normal_angle_deg")
-            },
-        }
-    )
-    return out
+    return _result(found, truth, pairs, matches, ("distance_um", "diameter_error_um", "normal_angle_deg"))
 
 
 def score(defects: dict, truth: dict, *, match_um: float = 50.0) -> dict:

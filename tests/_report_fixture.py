@@ -25,6 +25,7 @@ from pathlib import Path
 
 import numpy as np
 import zarr
+from _defects_doc import defects_doc as _defects_doc
 
 from pipeline import omezarr
 from pipeline import runfolder as rf
@@ -186,24 +187,13 @@ def defects_doc() -> dict:
             _plane(_n3(), INCL3_DEG, 0, (1, -1, 1), "{111}"),
         ),
     ]
-    return {
-        "schema_version": 1,
-        "software": {"name": "crackstack", "version": "0.1.0"},
-        "wafer": {
-            "diameter_mm": DIAMETER_MM,
-            "thickness_um": THICKNESS_UM,
-            "crystal": {"z_uvw": [0, 0, 1], "x_uvw": [1, 1, 0]},
-            "center_xy_mm": list(CENTER_XY_MM),
-            "center_source": "acquisition",
-        },
-        "acquisition": {
-            "energy_keV": 17.479,
-            "reflection": [2, 2, 0],
-            "geometry": "transmission",
-            "voxel_um": list(VOXEL_UM),
-        },
-        "cracks": cracks,
-        "dislocation_loops": [
+    return _defects_doc(
+        diameter_mm=DIAMETER_MM,
+        thickness_um=THICKNESS_UM,
+        center_xy_mm=list(CENTER_XY_MM),
+        voxel_um=list(VOXEL_UM),
+        cracks=cracks,
+        loops=[
             {
                 "id": 4,
                 "center_um": [120.0, 40.0, 50.0],
@@ -212,8 +202,8 @@ def defects_doc() -> dict:
                 "meets_surface": False,
             }
         ],
-        "slip_bands": [{"id": 5, "direction": [1.0, 0.0, 0.0], "extent_um": 100.0, "count": 3}],
-    }
+        slip_bands=[{"id": 5, "direction": [1.0, 0.0, 0.0], "extent_um": 100.0, "count": 3}],
+    )
 
 
 def _labels() -> np.ndarray:

@@ -11,6 +11,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
+from _defects_doc import defects_doc as _defects_doc
 
 from pipeline import omezarr, runfolder
 
@@ -139,25 +140,14 @@ def build_run(root: str | Path, *, assessment: bool = True, chunks=(8, 32, 32)) 
             _ellipse_front(282.0, 160.0, 50.0, 35.0, THICKNESS_UM, -1),
         ),
     ]
-    doc = {
-        "schema_version": 1,
-        "software": {"name": "crackstack", "version": "0.1.0"},
-        "wafer": {
-            "diameter_mm": 300.0,
-            "thickness_um": THICKNESS_UM,
-            "crystal": {"z_uvw": [0, 0, 1], "x_uvw": [1, 1, 0]},
-            # centre chosen so the edge (r = 150 mm) crosses the imaged region at x ~ 300 um
-            "center_xy_mm": [-149.7, 0.13],
-            "center_source": "acquisition",
-        },
-        "acquisition": {
-            "energy_keV": 17.479,
-            "reflection": [2, 2, 0],
-            "geometry": "transmission",
-            "voxel_um": list(VOXEL_UM),
-        },
-        "cracks": cracks,
-        "dislocation_loops": [
+    doc = _defects_doc(
+        diameter_mm=300.0,
+        thickness_um=THICKNESS_UM,
+        # centre chosen so the edge (r = 150 mm) crosses the imaged region at x ~ 300 um
+        center_xy_mm=[-149.7, 0.13],
+        voxel_um=list(VOXEL_UM),
+        cracks=cracks,
+        loops=[
             {
                 "id": 3,
                 "center_um": [202.0, 62.0, 50.0],
@@ -166,8 +156,8 @@ def build_run(root: str | Path, *, assessment: bool = True, chunks=(8, 32, 32)) 
                 "meets_surface": False,
             }
         ],
-        "slip_bands": [],
-    }
+        slip_bands=[],
+    )
     runfolder.write_defects(root / runfolder.DEFECTS_JSON, doc)
     if assessment:
         runfolder.write_json_atomic(

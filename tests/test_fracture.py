@@ -14,6 +14,7 @@ import pytest
 from scipy import special
 
 from pipeline import fracture as fr
+from pipeline.crystal import orientation_matrix
 
 HALF_PI = 0.5 * math.pi
 
@@ -248,7 +249,7 @@ def test_stress_resolution_on_inclined_111():
     # containing the trace has sigma_n = 2/3, tau = sqrt(2)/3 = 0.4714 (cubic geometry: the normal
     # is 35.26 deg from the load, sigma_n = cos^2, tau = sin cos; Erdogan & Sih 1963 resolution).
     z_uvw, x_uvw = (0, 0, 1), (1, 1, 0)
-    A = fr.orientation_matrix(z_uvw, x_uvw)
+    A = orientation_matrix(z_uvw, x_uvw).T  # columns: wafer axes in the crystal frame
     n_w = A.T @ (np.array([1.0, -1.0, 1.0]) / math.sqrt(3.0))  # (1-11) contains [110] = wafer x
     assert abs(n_w[0]) < 1e-12
     angle = 0.0  # crack along +x: e_r = x, e_theta = y

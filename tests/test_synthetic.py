@@ -28,13 +28,13 @@ import yaml
 from skimage.registration import phase_cross_correlation
 
 import synthetic
+from pipeline import crystal as cx
 from pipeline.compute import set_quiet
 from pipeline.config import load_acquisition
 from pipeline.errors import InputError
 from pipeline.geometry import bragg_angle_deg
 from pipeline.runfolder import read_json, validate_defects
 from synthetic import Scenario, load_scenario, render_series
-from synthetic import crystal as cx
 from synthetic.defects import expand
 from synthetic.forward import (
     _check_layout,
@@ -406,8 +406,8 @@ def test_plane_descriptors_of_the_demo_orientation():
     th = math.radians(2.0)
     rot = n111 * math.cos(th) + np.cross(axis, n111) * math.sin(th)
     hkl, misfit = cx.nearest_hkl(rot)
-    assert cx.family(hkl) == "{111}" and misfit == pytest.approx(2.0, abs=1e-6)
-    assert cx.family((1, 1, 3)) == "{311}" and cx.family((0, 2, -2)) == "{220}"
+    assert cx.family_name(hkl) == "{111}" and misfit == pytest.approx(2.0, abs=1e-6)
+    assert cx.family_name((1, 1, 3)) == "{311}" and cx.family_name((0, 2, -2)) == "{220}"
     # a plane given by indices above the search range keeps them
     d115 = cx.plane_descriptor(cx.to_wafer(R, (1, 1, 5)), R, (2, 2, 10))
     assert d115["nearest_hkl"] == [1, 1, 5] and d115["misfit_deg"] == 0.0
