@@ -134,6 +134,17 @@ def test_table_selection_and_review_round_trip(make_napari_viewer, qtbot, run):
     assert table.select_id(2)
     labels = viewer.layers["defects"]
     assert labels.selected_label == 2 and labels.show_selected_label
+    # a click on a finding in the canvas selects its row (the click handler's lookup, at the
+    # centre of loop 3; background selects nothing)
+    loop = next(r for r in panel.view["rows"] if r["id"] == 3)
+    x, y, z = loop["center_um"]
+    viewer.dims.set_point(0, z)
+    assert panel.pick_at((z, y, x), dims_displayed=(1, 2)) == 3
+    assert table.selected_id() == 3 and labels.selected_label == 3
+    assert panel.pick_at((z, y, x + 20.0), dims_displayed=(1, 2)) is None  # beside the loop
+    assert panel.pick_at((z, y + 900.0, x), dims_displayed=(1, 2)) is None  # off the volume
+    assert panel._on_canvas_click in labels.mouse_drag_callbacks
+    assert table.select_id(2)
     card = panel.detail.toPlainText()
     for text in (
         "Crack 2",

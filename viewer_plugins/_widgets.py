@@ -364,6 +364,9 @@ class ReviewPanel(QWidget):
         self.run_label.setText(f"Run {self.view['root']}: {n} findings"
                                + ("" if self.view["assessment"] else " (not assessed)"))
         self.defect_table.set_rows(self.view["rows"])
+        labels = self._labels_layer()
+        if labels is not None and self._on_canvas_click not in labels.mouse_drag_callbacks:
+            labels.mouse_drag_callbacks.append(self._on_canvas_click)
 
     def _labels_layer(self):
         root = str(self.view["root"]) if self.view else None
@@ -397,6 +400,33 @@ class ReviewPanel(QWidget):
         self.controls.set_target(self.current_id, detail["defect"].get("review", {}).get("note", ""))
         if self.defect_table.selected_id() != self.current_id:
             self.defect_table.select_id(self.current_id, emit=False)
+
+    def pick_at(self, position_world: tuple[float, ...], *, view_direction=None,
+                dims_displayed=None) -> int | None:
+        """Select the finding whose label lies under a world position (z, y, x in um), as a
+        click on the canvas does; returns its id, or None over background."""
+        labels = self._labels_layer()
+        if labels is None or self.view is None:
+            return None
+        value = labels.get_value(
+            position_world,
+            view_direction=view_direction,
+            dims_displayed=list(dims_displayed) if dims_displayed is not None else None,
+            world=True,
+        )
+        if isinstance(value, tuple):  # multiscale layers answer (level, value)
+            value = value[-1]
+        if value is None or int(value) == 0:
+            return None
+        if not any(r["id"] == int(value) for r in self.view["rows"]):
+            return None
+        self.select_defect(int(value))
+        return int(value)
+
+    def _on_canvas_click(self, layer: Any, event: Any) -> None:
+        # napari calls mouse callbacks with the layer and the event (position in world units)
+        self.pick_at(tuple(event.position), view_direction=getattr(event, "view_direction", None),
+                     dims_displayed=getattr(event, "dims_displayed", None))
 
     # -- review --------------------------------------------------------------------------------
     def record_verdict(self, status: str, note: str, reviewer: str) -> None:
