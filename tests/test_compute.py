@@ -28,6 +28,9 @@ def test_local_cluster_same_results():
         assert client is not None
         assert compute.current_client() is client
         assert compute.run_tasks(_tasks(), "test") == [3.0 * i for i in range(7)]
+        # the stage modules were imported when each worker started, not in the first task
+        loaded = client.run(lambda: sorted(set(compute.WARM_MODULES) & set(__import__("sys").modules)))
+        assert len(loaded) == 2 and all(v == sorted(compute.WARM_MODULES) for v in loaded.values())
     assert compute.current_client() is None
 
 
