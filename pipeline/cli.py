@@ -202,7 +202,11 @@ def _fmt(v) -> str:
     if v is None:
         return "-"
     if isinstance(v, float):
-        return f"{v:.3g}" if abs(v) < 1e4 else f"{v:.0f}"
+        if abs(v) >= 1e4:
+            return f"{v:.0f}"
+        # values already rounded to one decimal (the demo table) print as they are: 123.4 must
+        # not become "123"; others with three significant digits
+        return f"{v:.1f}" if v == round(v, 1) else f"{v:.3g}"
     if isinstance(v, (list, tuple)):
         return "(" + " ".join(str(x) for x in v) + ")"
     return str(v)

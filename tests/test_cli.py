@@ -52,3 +52,5 @@ def test_run_missing_acquisition_exits_2(tmp_path):
 def test_format_table(rows):
     text = cli.format_table(rows)
     assert "1.23" in text and "-" in text.splitlines()[-1]
+    # a value rounded to one decimal keeps it (the demo table is compared with defects.json)
+    assert "123.4" in cli.format_table([{"depth_um": 123.4}])
