@@ -254,6 +254,20 @@ class SegmentConfig(Strict):
 class MeasureConfig(Strict):
     bootstrap: int = Field(50, ge=0, le=2000, description="bootstrap resamples for uncertainties")
     seed: int = 0
+    detector_blur_px: float = Field(
+        0.7,
+        ge=0,
+        le=20,
+        description="detector point-spread, Gaussian sigma in pixels (part of the volume's "
+        "point-spread that measure takes out; the acquisition does not record it)",
+    )
+    slit_edge_um: float = Field(
+        1.0,
+        ge=0,
+        le=100,
+        description="Gaussian softness of the slit's edges, um (adds to the top hat's width in "
+        "the volume's point-spread)",
+    )
 
 
 class AssessConfig(Strict):

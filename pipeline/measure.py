@@ -5,8 +5,47 @@ outside), its ``labels/defects`` (uint32, ids = component ids) and ``components.
 bounding box of each component). Outputs: ``defects.json`` (schema-validated) and
 ``defects.csv`` (one row per defect, same ids), both written atomically.
 
-Method, per crack
------------------
+Method, per crack, with the volume (the stage)
+----------------------------------------------
+The reconstructed volume is the defects' contrast smeared by a point-spread that follows from
+the acquisition's geometry (:func:`volume_point_spread`): each detector column integrates the
+lit ribbon across the slit, so a point is spread along the diffracted beam over
+``w |L| / (G cos psi0)`` in depth (+-12..17 um for the 10-15 um slits of the random scans,
+psi_h = 10.6 deg from z), plus the interpolation between frames and the detector's sampling
+and blur (``measure.detector_blur_px``, ``measure.slit_edge_um``). Labels thresholded on that
+smear reach about one half-length beyond a crack's tip and lean along the beam, so the crack is
+measured from its contrast instead:
+
+1. Contrast mass (:func:`contrast_mass`): the excess intensity over the local band (median per
+   depth slice outside the defect; times the band's lateral profile where the wafer edge is
+   near) in the label grown by the smear segment and a one-voxel shell.
+2. Moments (:func:`_mass_moments`): a convolution adds the point-spread's covariance to the
+   object's and keeps its mean, so the crack's own second moments are the mass's less the
+   point-spread's. Plane normal: the least-variance axis; where the smear lies in the plane
+   (vertical cracks with the normal along y), the labels' plane is unbiased too and is averaged
+   in by inverse variance.
+3. Kind and shape from the labels (which boundaries they touch, steps 2-4 below). Depth and
+   length (:func:`_crack_from_mass`) from the moments of a uniform patch: a semi-ellipse of
+   depth a has its mean distance from the boundary at 4 a / (3 pi), and variance c^2 / 4 along
+   the mouth (c the half-length); a quarter ellipse the same means along both boundaries; a
+   through crack's band of length l has variance l^2 / 12. The reach of the crack's own
+   contrast beyond its front (``CONTRAST_REACH_UM``) comes off each free end. The front is the
+   ellipse of those axes on the boundary; ``front.fit_rms_um`` stays the labelled outline's rms
+   about its own ellipse fit (a shape check).
+4. One-sigma (``uncertainty.method`` says which path ran): bootstrap over the mass voxels
+   (``measure.bootstrap`` resamples, Efron & Tibshirani 1993) of depth, length and inclination,
+   plus a model error calibrated on the residuals of the exact-registration harness
+   (``MODEL_SIGMA_DEPTH_UM`` along the boundary normal, ``MODEL_SIGMA_LENGTH_UM`` along the
+   mouth, ``MODEL_SIGMA_TILT_UM`` across the plane over the crack's extent down the dip).
+
+Loops from the mass as well: the deconvolved covariance of a ring is its centre line's
+(R^2 / 2 along both in-plane axes) plus the tube's (the same on every axis), so the normal is
+the least-variance axis and R = sqrt(l1 + l2 - 2 l0). Defects whose mass is not clearly above
+the noise (``MIN_MASS_SNR``), and calls without a volume (invented labels), fall back to the
+labels alone:
+
+Method, per crack, from labels alone
+------------------------------------
 1. The component's voxel centres are taken in the wafer frame (um).
 2. Outliers: RANSAC (Fischler & Bolles 1981) with :class:`PlaneModel` (SVD of the centred
    points: the normal is the singular vector of the smallest singular value) through
@@ -36,13 +75,14 @@ Method, per crack
    that boundary (2c for a semi-elliptical crack; the one-sided extent along the edge for a
    quarter-elliptical corner crack); both from the ellipse when it describes the front, else
    from the raw outline. Thickness span [z_min, z_max].
-7. One-sigma: inclination by bootstrap over voxels of the plane fit (``measure.bootstrap``
-   resamples, ``measure.seed``); depth and length by propagation: the ellipse-fit covariance
-   (front points correlated over one voxel), the thickening's bootstrap spread, and a residual
-   model error of ``SYSTEMATIC_VOXELS`` per free end. The ``method`` field says so.
+7. One-sigma (labels alone): inclination by bootstrap over voxels of the plane fit
+   (``measure.bootstrap`` resamples, ``measure.seed``); depth and length by propagation: the
+   ellipse-fit covariance (front points correlated over one voxel), the thickening's bootstrap
+   spread, and a residual model error of ``SYSTEMATIC_VOXELS`` per free end.
 
-Loops: plane fit as above, then a circle (:class:`skimage.measure.CircleModel`, refined to the
-geometric least-squares circle) in the plane gives centre and diameter; ``meets_surface`` when
+Loops from labels alone: plane fit as above, then a circle
+(:class:`skimage.measure.CircleModel`, refined to the geometric least-squares circle) in the
+plane gives centre and diameter; ``meets_surface`` when
 the loop touches z = 0 or z = t. Slip bands: 26-connected pieces that are lines give the
 direction (their mean principal axis) and the count; touching lines fall back to a RANSAC line
 (:class:`skimage.measure.LineModelND`) and blobs of the projection across it. Extent along the
@@ -78,6 +118,7 @@ from pipeline.compute import run_tasks
 from pipeline.config import Acquisition, MeasureConfig
 from pipeline.crystal import nearest_plane
 from pipeline.errors import InputError
+from pipeline.geometry import Geometry
 
 log = logging.getLogger(__name__)
 
@@ -494,6 +535,43 @@ TAPER = 0.82
 #: that the reported one-sigma covers about 68 % of the true errors; checked on 40 others in
 #: tests/test_measure.py.
 SYSTEMATIC_VOXELS = 0.07
+
+
+#: Mass-equivalent reach of a crack's own contrast beyond its front, um: the strain field about
+#: the crack edge adds contrast outside the crack area, which the mass moments count as crack.
+#: For a contrast f(r) isotropic about the crack edge it is ``pi int f r dr / (2 int f dr)``;
+#: the forward model's crack contrast (core 1.5 exp(-r^2 / 2 (1.2 um)^2) + halo
+#: 0.3 exp(-r / 4 um), synthetic.scenario.FeatureContrast) gives 3.2 um, and the mean excess of
+#: the deconvolved extents over 36 cracks of the exact-registration harness run 3.3 um. A
+#: property of the contrast model (of real crack tips), not of the instrument.
+CONTRAST_REACH_UM = 3.3
+#: Model error (one sigma) of the contrast-mass measurement beyond its bootstrap spread, per
+#: direction: depth (along the boundary normal, z for surface cracks) and length (along the
+#: mouth) in um; the plane's tilt as a displacement (um) of one end of the crack across its
+#: plane over the crack's extent down the dip (so a 775 um tall through crack gets 0.02 deg, a
+#: 20 um deep one 0.7 deg). Calibrated on the exact-registration harness (synthetic.evaluate
+#: --registration truth, seeds 0-20, 37 matched cracks): the smallest terms for which one sigma
+#: covers about 68 % of the errors -- depth 71 % (21 cracks, through cracks have none), length
+#: 70 % (37), tilt 71 % of the 21 surface and edge cracks (84 % with the 16 through cracks,
+#: whose inclination errors are <= 0.01 deg). Fresh scans (seeds 100-108, 200-208): depth
+#: 75 / 86 %, length 67 / 60 %, inclination 83 / 80 %.
+MODEL_SIGMA_DEPTH_UM = 0.4
+MODEL_SIGMA_LENGTH_UM = 0.3
+MODEL_SIGMA_TILT_UM = 0.25
+#: Least signal-to-noise of a defect's contrast mass (total excess over its noise) for the
+#: intensity measurement; below it (or without a volume) the labels alone are measured.
+MIN_MASS_SNR = 10.0
+#: A crack plane holds the smear direction when |n . smear| (n: the labels' plane normal) is
+#: below this (3 deg); the labels' normal is then unbiased and joins the mass's
+#: (inverse-variance weights).
+SMEAR_IN_PLANE = math.sin(math.radians(3.0))
+#: Least one-sigma given to the labels' plane normal in that average, deg (the voxel lattice).
+LABEL_TILT_FLOOR_DEG = 0.3
+#: Room around a defect's smear from which its background is taken, um.
+BACKGROUND_MARGIN_UM = 24.0
+#: Strip along the wafer edge over which a defect's region reaches out to the edge, um (more
+#: than segment's 20 um edge margin, so that an edge crack's mass is complete).
+EDGE_GAP_UM = 24.0
 
 
 def _weighted_plane(p: np.ndarray, wts: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
@@ -992,8 +1070,18 @@ def measure_crack_points(
     bootstrap: int = 50,
     seed: int = 0,
     thickening_shape_um: tuple[float, float, float] | None = None,
+    mass: ContrastMass | None = None,
+    point_spread: PointSpread | None = None,
+    reach_um: float = CONTRAST_REACH_UM,
 ) -> dict[str, Any]:
-    """Measure one crack from its voxel centres.
+    """Measure one crack from its voxel centres and, when given, its contrast mass.
+
+    With ``mass`` (the excess intensity around the crack, :func:`contrast_mass`) of at least
+    :data:`MIN_MASS_SNR`, plane, depth, length and front come from the mass moments with the
+    volume's point-spread taken out (:func:`_crack_from_mass`), and their one-sigma from a
+    bootstrap over the mass voxels plus the calibrated model error (``MODEL_SIGMA_*``). Without
+    it (labels only, e.g. invented labels) the labels are measured as a thickened sheet
+    (module docstring, steps 2-7).
 
     Parameters
     ----------
@@ -1014,12 +1102,19 @@ def measure_crack_points(
     thickening_shape_um : (dz, dy, dx), optional
         Shape of the thickening of the labels: they cover the crack dilated by an ellipsoid
         with semi-axes ``k * thickening_shape_um`` (k is measured). Default: the voxel size.
+    mass : ContrastMass, optional
+        Excess intensity around the crack; None: labels only.
+    point_spread : PointSpread, optional
+        Point-spread of the volume (:func:`volume_point_spread`); default none.
+    reach_um : float
+        Reach of the crack's own contrast beyond its front, um (:data:`CONTRAST_REACH_UM`).
 
     Returns
     -------
     dict
         The crack's export fields (SPEC section 7) without ``id`` and ``review``, plus
-        ``voxels`` and ``thickening_um`` (the measured ellipsoid's semi-axes, x y z).
+        ``voxels`` and ``thickening_um`` (the labels' measured ellipsoid's semi-axes, x y z);
+        ``uncertainty.method`` says whether the contrast mass or the labels were measured.
 
     Raises
     ------
@@ -1093,11 +1188,63 @@ def measure_crack_points(
         + 2.0 * ((sig_k * _support(shape, e_u)) ** 2 + (SYSTEMATIC_VOXELS * box_l) ** 2)
     )
     method = (
-        f"inclination: bootstrap over voxels ({len(incl_b)} resamples) of the plane fit; "
-        "depth and length: propagation of the front-fit residuals (ellipse covariance, front "
-        "points correlated over one voxel) or of one voxel per extreme, of the thickening "
-        f"correction's bootstrap spread and of {SYSTEMATIC_VOXELS} voxel per end for the outline model"
+        f"labels only: inclination by bootstrap over voxels ({len(incl_b)} resamples) of the "
+        "plane fit; depth and length by propagation of the front-fit residuals (ellipse "
+        "covariance, front points correlated over one voxel) or of one voxel per extreme, of the "
+        f"thickening correction's bootstrap spread and of {SYSTEMATIC_VOXELS} voxel per end for "
+        "the outline model"
     )
+    sig_i = _robust_sd(incl_b)
+    psf_cov = np.zeros((3, 3)) if point_spread is None else np.asarray(point_spread.cov_um2, float)
+    if mass is not None and len(mass.excess) >= MIN_VOXELS and mass.snr >= MIN_MASS_SNR:
+        try:
+            mg = _crack_from_mass(mass.points_um, mass.excess, psf_cov, ctx, reach_um)
+        except (ValueError, np.linalg.LinAlgError) as exc:
+            log.debug("measure: contrast mass not used (%s)", exc)
+            mg = None
+        if mg is not None:
+            sd_d, sd_l, sd_i = _crack_mass_bootstrap(
+                mass.points_um, mass.excess, psf_cov, ctx, reach_um, bootstrap, rng
+            )
+            smear = None if point_spread is None else np.asarray(point_spread.direction, float)
+            n_l = n if float(n @ mg["normal"]) >= 0 else -n
+            apart = math.degrees(math.acos(min(1.0, float(n_l @ mg["normal"]))))
+            s_l = max(sig_i, LABEL_TILT_FLOOR_DEG)
+            if (
+                smear is not None
+                and kind != "edge"  # labels cut by the edge (and segment's edge margin)
+                and abs(float(n_l @ smear)) < SMEAR_IN_PLANE  # the labels' (precise) normal
+                and apart <= 3.0 * math.hypot(sd_i, s_l)
+            ):
+                # the smear runs within the crack plane: it lengthens the labelled sheet but
+                # leaves it symmetric about the plane, so the labels' plane is unbiased too and
+                # less noisy; where the two normals agree (within 3 sigma: not where the labels
+                # took in something else, such as the wafer edge's face) they are averaged by
+                # their inverse variances
+                w_m = 1.0 / max(math.radians(sd_i), 1e-4) ** 2
+                w_l = 1.0 / math.radians(s_l) ** 2
+                n_c = _orient(_unit(w_m * mg["normal"] + w_l * n_l))
+                mg = _crack_from_mass(
+                    mass.points_um, mass.excess, psf_cov, ctx, reach_um, normal=n_c
+                ) or mg
+                sd_i = math.degrees(1.0 / math.sqrt(w_m + w_l))
+            n = mg["normal"]
+            res = (pin[g["interior"]] - mg["centroid"]) @ n
+            plane = plane_record(n, float(np.sqrt(np.mean(res**2))), z_uvw, x_uvw)
+            g = dict(g)
+            for key in ("depth", "length", "front3", "span", "a", "c"):
+                g[key] = mg[key]
+            through = kind == "through"
+            sig_d = 0.0 if through else math.hypot(sd_d, MODEL_SIGMA_DEPTH_UM)
+            sig_l = math.hypot(sd_l, MODEL_SIGMA_LENGTH_UM)
+            sig_i = math.hypot(sd_i, math.degrees(MODEL_SIGMA_TILT_UM / mg["dip_um"]))
+            method = (
+                "contrast mass (excess intensity) with the volume's point-spread taken out: "
+                f"bootstrap over voxels ({bootstrap} resamples) of the mass moments for depth, "
+                "length and inclination, plus calibrated model errors "
+                f"({MODEL_SIGMA_DEPTH_UM} um depth, {MODEL_SIGMA_LENGTH_UM} um length, "
+                f"{MODEL_SIGMA_TILT_UM} um tilt over the crack's extent down the dip)"
+            )
     front = {
         "a_um": g["a"],
         "c_um": g["c"],
@@ -1118,7 +1265,7 @@ def measure_crack_points(
         "uncertainty": {
             "depth_um": sig_d,
             "length_um": sig_l,
-            "inclination_deg": _robust_sd(incl_b),
+            "inclination_deg": sig_i,
             "method": method,
         },
         "voxels": int(len(p)),
@@ -1141,6 +1288,379 @@ def _position(p: np.ndarray, edge: WaferEdge, on_edge: bool = False) -> dict[str
 
 
 # ---------------------------------------------------------------------------------------------
+# Point-spread of the reconstructed volume, and the contrast mass of a defect
+
+
+@dataclass(frozen=True)
+class PointSpread:
+    """Point-spread of the reconstructed volume, from the acquisition's geometry.
+
+    ``direction`` (unit, x y z) is the direction along which a point is smeared (the diffracted
+    beam), ``half_length_um`` the half-length of the smear along it (its support), ``cov_um2``
+    the 3 x 3 covariance (x, y, z, um^2) of the smear. A zero spread (``PointSpread.none()``)
+    stands for a volume without slit blur (invented labels).
+    """
+
+    direction: np.ndarray
+    half_length_um: float
+    cov_um2: np.ndarray
+
+    @classmethod
+    def none(cls) -> PointSpread:
+        return cls(EZ.copy(), 0.0, np.zeros((3, 3)))
+
+
+def volume_point_spread(
+    geom: Geometry, step_um: float, detector_blur_px: float = 0.0, slit_edge_um: float = 0.0
+) -> PointSpread:
+    """Point-spread of the reconstructed volume, mostly along the diffracted beam.
+
+    A detector column integrates the lit ribbon across the slit: frame k's pixel at column c
+    sees every wafer point with ``z G + D' L = const`` for the offsets ``D'`` across the slit
+    (a top hat ``w / cos(psi0)`` wide in x, SPEC 5). Reconstruct puts the pixel's value at the
+    voxel with its own offset ``D``, so a point at ``D'' = D' - D`` contributes from
+    ``dz = -D'' L / G`` and ``dx = D'' + dz tan(psi0)``: the smear runs along
+    ``(1 - (L/G) tan psi0, 0, -L/G)`` per um of ``D''``, the diffracted beam's direction (in
+    symmetric Laue ``dx/dz = -tan(theta_B)``; its depth extent ``w |L| / (G cos psi0)`` is the
+    depth ambiguity ``w sin(alpha_out) / sin(2 theta_B)`` of PHYSICS.md section 1.3). Its
+    variance in ``D''`` is the top hat's ``(w / cos psi0)^2 / 12`` plus the linear
+    interpolation between the two frames that bracket the voxel (weights 1 - f and f at offsets
+    f s and (f - 1) s: variance f (1 - f) s^2, s^2 / 6 on average over f). The detector adds,
+    along its rows (y) and columns (depth z at fixed D, ``p_col / G`` per column): the pixel's
+    area (p^2 / 12), the bilinear interpolation between pixels (p^2 / 6) and its own blur
+    (``detector_blur_px``, Gaussian sigma, which the acquisition does not record). In the random
+    scans (w 10-15 um, step 4 um) the smear is +-12..17 um along z (one sigma 9-12 um), three
+    voxels and more: labels thresholded on it reach that much beyond a crack's tip.
+
+    Parameters
+    ----------
+    geom : Geometry
+        The acquisition's geometry (psi0, G, L, slit width, pixel size).
+    step_um : float
+        Scan step, um.
+    detector_blur_px : float
+        Detector point-spread, Gaussian sigma in pixels.
+
+    Returns
+    -------
+    PointSpread
+        Direction (unit), support half-length (um) and covariance (x, y, z, um^2).
+    """
+    w_x = geom.slit_width_um / math.cos(math.radians(geom.psi0_deg))
+    r = geom.L / geom.G
+    per_d = np.array([1.0 - r * geom.tan_psi0, 0.0, -r])
+    edge_x = slit_edge_um / math.cos(math.radians(geom.psi0_deg))
+    var_d = w_x * w_x / 12.0 + edge_x * edge_x + step_um * step_um / 6.0
+    norm = float(np.linalg.norm(per_d))
+    direction = _orient(per_d / norm)
+    cov = var_d * np.outer(per_d, per_d)
+    dz_col = geom.p_col_um / abs(geom.G)
+    pix2 = 1.0 / 12.0 + 1.0 / 6.0 + float(detector_blur_px) ** 2
+    cov += np.diag([0.0, geom.p_row_um**2, dz_col**2]) * pix2
+    return PointSpread(direction, (0.5 * w_x + abs(step_um)) * norm, cov)
+
+
+def _segment_structure(psf: PointSpread, vx: np.ndarray) -> np.ndarray:
+    """Structuring element (z, y, x) of the smear segment on the voxel grid."""
+    h = psf.half_length_um
+    if h <= 0:
+        return np.ones((1, 1, 1), bool)
+    d = psf.direction * h / vx  # x y z, voxels
+    n = int(math.ceil(np.abs(d).max() * 2)) + 1
+    half = np.ceil(np.abs(d)).astype(int)
+    el = np.zeros((2 * half[2] + 1, 2 * half[1] + 1, 2 * half[0] + 1), bool)
+    for s in np.linspace(-1.0, 1.0, 2 * n + 1):
+        i = np.round(s * d).astype(int) + half
+        el[i[2], i[1], i[0]] = True
+    return el
+
+
+@dataclass
+class ContrastMass:
+    """The excess intensity (above the local perfect-crystal background) around one defect.
+
+    ``points_um`` (N, 3: x y z) are voxel centres, ``excess`` their background-subtracted
+    intensities (band units; noisy, may be negative).
+    """
+
+    points_um: np.ndarray
+    excess: np.ndarray
+    noise: float = 0.0
+
+    @property
+    def snr(self) -> float:
+        """Total excess over its noise (``noise * sqrt(N)``); inf when noise-free."""
+        tot = float(self.excess.sum())
+        sd = self.noise * math.sqrt(len(self.excess))
+        return tot / sd if sd > 0 else (math.inf if tot > 0 else 0.0)
+
+
+def contrast_mass(
+    image: np.ndarray,
+    labels: np.ndarray,
+    label: int,
+    offset_zyx: tuple[int, int, int],
+    meta: dict,
+    psf: PointSpread,
+    shell_zyx: tuple[int, int, int] = (1, 1, 1),
+    edge: WaferEdge | None = None,
+) -> ContrastMass:
+    """Excess intensity of one labelled defect and of the smear around it, voxel by voxel.
+
+    The region is the label dilated by the smear segment (everything the point-spread can have
+    carried out of the defect) and by a shell of ``shell_zyx`` voxels (the defect's own contrast
+    beyond the labels' threshold), minus other labels. The background is the
+    median per depth slice of the block's voxels outside that region and inside the wafer
+    (columns whose mean is above half the block's median level): the band and its fringes
+    depend on depth only, so this keeps the band, the surface lines and the fringes out.
+
+    Parameters
+    ----------
+    image, labels : (nz, ny, nx) ndarray
+        Blocks of the volume and of its labels (the same voxels).
+    label : int
+        The defect's label.
+    offset_zyx : 3 ints
+        Index of the blocks' first voxel in the full volume.
+    meta : dict
+        ``voxel_um`` and ``origin_um`` of the volume.
+    psf : PointSpread
+        Point-spread of the volume.
+    shell_zyx : 3 ints
+        Half-widths (voxels) of the shell added around the smeared label.
+    edge : WaferEdge, optional
+        The wafer edge; where the label comes within :data:`EDGE_GAP_UM` of it, the background
+        follows the band's lateral profile and the region reaches out to the edge.
+    """
+    img = np.nan_to_num(np.asarray(image, np.float64))
+    lab = np.asarray(labels)
+    vx = np.asarray(meta["voxel_um"], float)[::-1]
+    own = lab == int(label)
+    region = ndi.binary_dilation(own, _segment_structure(psf, vx))
+    region = ndi.binary_dilation(region, np.ones(tuple(2 * int(h) + 1 for h in shell_zyx), bool))
+    others = ndi.binary_dilation((lab != 0) & ~own, np.ones((3, 3, 3), bool))
+    region &= ~others
+    col_mean = img.mean(axis=0)
+    pos = col_mean[col_mean > 0]
+    level = float(np.median(pos)) if pos.size else 0.0
+    inside_cols = col_mean > 0.5 * level if pos.size else np.ones(col_mean.shape, bool)
+    sample = ~region & ~others & inside_cols[None, :, :]
+    bg = np.zeros(img.shape[0])
+    for k in range(img.shape[0]):
+        s = img[k][sample[k]]
+        bg[k] = float(np.median(s)) if s.size >= 5 else np.nan
+    if np.all(np.isnan(bg)):
+        raise ValueError("no background voxels around the defect")
+    ok = ~np.isnan(bg)
+    bg = np.interp(np.arange(len(bg)), np.nonzero(ok)[0], bg[ok])
+    bg3 = np.broadcast_to(bg[:, None, None], img.shape)
+    near_edge = False
+    if edge is not None and edge.center_xy_um is not None:
+        jy, jx = np.meshgrid(np.arange(img.shape[1]), np.arange(img.shape[2]), indexing="ij")
+        cols = omezarr.voxel_to_wafer(
+            np.column_stack([np.zeros(jy.size, int), jy.ravel(), jx.ravel()])
+            + np.asarray(offset_zyx, int),
+            meta,
+        )
+        to_edge = (edge.radius_um - edge.radius_of(np.asarray(cols, float))).reshape(jy.shape)
+        near_edge = bool(np.any(to_edge[own.any(axis=0)] <= EDGE_GAP_UM))
+    if near_edge:
+        # the wafer edge crosses the block: the band falls across it (over the smear's reach in
+        # x), so the background is the depth profile times the band's lateral profile, taken
+        # per column from the voxels outside the region (nearest sampled column where the
+        # region fills a column), and the region is not cut at the edge, where the smear
+        # carried the defect's contrast. Labels may stop short of the edge (a segmentation
+        # margin) where the defect's contrast goes on: within EDGE_GAP_UM of the edge the
+        # region takes in the strip between them (grown radially outward only).
+        own_cols = own.any(axis=0)
+        cxy = np.asarray(cols, float).reshape(*jy.shape, 3)[own_cols][:, :2].mean(axis=0)
+        out_dir = _unit(cxy - np.asarray(edge.center_xy_um, float))  # radially outward (x, y)
+        steps = np.linspace(0.0, EDGE_GAP_UM, int(math.ceil(EDGE_GAP_UM / vx[:2].min())) + 1)
+        sy = np.round(steps * out_dir[1] / vx[1]).astype(int)
+        sx = np.round(steps * out_dir[0] / vx[0]).astype(int)
+        ray = np.zeros((1, 2 * np.abs(sy).max() + 1, 2 * np.abs(sx).max() + 1), bool)
+        ray[0, sy + np.abs(sy).max(), sx + np.abs(sx).max()] = True
+        beyond = to_edge >= -2.0 * float(vx[0])  # the smear's reach past the edge
+        strip = ((to_edge <= EDGE_GAP_UM) & beyond)[None]
+        region |= ndi.binary_dilation(region, ray) & strip & ~others
+        region &= (inside_cols | (beyond & (to_edge <= 0.0)))[None]
+        deep = bg > 0.5 * float(bg.max())
+        free = ~region & ~others & deep[:, None, None]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            ratio = np.where(free, img / np.maximum(bg3, 1e-12), np.nan)
+        have = free.any(axis=0)
+        lat = np.ones(col_mean.shape)
+        if have.any():
+            lat[have] = np.nanmedian(ratio[:, have], axis=0)
+            if not have.all():
+                _, near = ndi.distance_transform_edt(~have, return_indices=True)
+                lat = lat[near[0], near[1]]
+        bg3 = bg3 * lat[None, :, :]
+        sample = free & inside_cols[None, :, :]
+    else:
+        region &= inside_cols[None, :, :]
+    resid = img[sample] - bg3[sample]
+    noise = 1.4826 * float(np.median(np.abs(resid - np.median(resid)))) if resid.size else 0.0
+    idx = np.argwhere(region)
+    excess = img[region] - bg3[region]
+    pts = omezarr.voxel_to_wafer(idx + np.asarray(offset_zyx, int), meta)
+    return ContrastMass(np.asarray(pts, float), excess, noise)
+
+
+def _mass_moments(
+    q: np.ndarray, e: np.ndarray, psf_cov: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Mean and covariance (um, um^2) of the contrast mass with the point-spread taken out.
+
+    A convolution adds the point-spread's covariance to the object's (the mean of a symmetric
+    spread is zero), so the object's second moments are the observed ones less ``psf_cov``.
+    """
+    m = float(e.sum())
+    if not m > 0:
+        raise ValueError("no positive contrast mass")
+    mu = (e[:, None] * q).sum(axis=0) / m
+    x = q - mu
+    cov = (e[:, None] * x).T @ x / m - psf_cov
+    return mu, cov
+
+
+def _crack_from_mass(
+    q: np.ndarray,
+    e: np.ndarray,
+    psf_cov: np.ndarray,
+    ctx: _CrackCtx,
+    reach_um: float,
+    normal: np.ndarray | None = None,
+) -> dict[str, Any] | None:
+    """Plane, depth, length and front of a crack from its contrast mass (None: internal crack).
+
+    The mass is the crack's contrast convolved with the volume's point-spread, so its mean is
+    the crack's and its covariance the crack's plus ``psf_cov`` (:func:`_mass_moments`). The
+    plane normal is the least-variance axis of the deconvolved covariance. A uniform
+    semi-elliptical patch of depth a has its mean distance from the boundary at 4 a / (3 pi) and
+    its variance along the mouth c^2 / 4 (c the half-length); a quarter ellipse the same means
+    along both boundaries; a through crack's band of length l has variance l^2 / 12. The reach
+    of the crack's own contrast beyond the front (``reach_um``) is taken off every free end.
+    ``normal`` replaces the mass's own plane normal when given.
+    """
+    mu, cov = _mass_moments(q, e, psf_cov)
+    _, vec = np.linalg.eigh(cov)
+    n = _orient(_unit(vec[:, 0] if normal is None else np.asarray(normal, float)))
+    m_tot = float(e.sum())
+    t = ctx.thickness_um
+    shape = _shape_of(ctx.kind, ctx.touches)
+    e_u, e_v = _in_plane_axes(n)
+
+    def mean_dist(name: str) -> float:
+        return float(np.sum(e * ctx.dist(name, q)) / m_tot)
+
+    def var_along(d: np.ndarray) -> float:
+        s = (q - mu) @ d
+        return max(float(np.sum(e * s * s) / m_tot - d @ psf_cov @ d), 0.0)
+
+    def in_plane(m: np.ndarray) -> np.ndarray:
+        v = m - (m @ n) * n
+        return _unit(v) if np.linalg.norm(v) > 1e-9 else e_v
+
+    span = [0.0, t]
+    if shape == "semi_elliptical":
+        prim = "edge" if ctx.kind == "edge" else ("top" if ctx.kind == "surface_top" else "bottom")
+        m = ctx.bnds[prim].m
+        e_c = _unit(np.cross(n, m)) if np.linalg.norm(np.cross(n, m)) > 1e-6 else e_u
+        e_a = in_plane(m)
+        g = max(abs(float(e_a @ m)), 1e-6)
+        depth = max(0.75 * math.pi * mean_dist(prim) - reach_um, 0.0)
+        length = max(4.0 * math.sqrt(var_along(e_c)) - 2.0 * reach_um, 0.0)
+        base = mu - (float(ctx.dist(prim, mu[None, :])[0]) / g) * e_a
+        th = np.linspace(0.0, math.pi, 65)[:, None]
+        front = base + 0.5 * length * np.cos(th) * e_c + (depth / g) * np.sin(th) * e_a
+        a_fit, c_fit = depth, 0.5 * length
+        dip = depth / g
+        if ctx.kind == "surface_top":
+            span = [0.0, min(t, depth)]
+        elif ctx.kind == "surface_bottom":
+            span = [max(0.0, t - depth), t]
+        else:
+            span = [max(0.0, float(front[:, 2].min())), min(t, float(front[:, 2].max()))]
+    elif shape == "quarter_elliptical":
+        face = "top" if ctx.touches["top"] else "bottom"
+        mf, me = ctx.bnds[face].m, ctx.bnds["edge"].m
+        depth = max(0.75 * math.pi * mean_dist("edge") - reach_um, 0.0)
+        length = max(0.75 * math.pi * mean_dist(face) - reach_um, 0.0)
+        mm = np.vstack([[mf @ e_u, mf @ e_v], [me @ e_u, me @ e_v]])
+        d0 = np.array([ctx.dist(face, mu[None, :])[0], ctx.dist("edge", mu[None, :])[0]])
+        th = np.linspace(0.0, 0.5 * math.pi, 33)
+        rhs = np.column_stack([length * np.cos(th), depth * np.sin(th)]) - d0
+        xy = np.linalg.solve(mm, rhs.T).T
+        front = mu + np.outer(xy[:, 0], e_u) + np.outer(xy[:, 1], e_v)
+        a_fit, c_fit = depth, length
+        dip = math.hypot(depth, length)
+        span = [0.0, min(t, length)] if face == "top" else [max(0.0, t - length), t]
+    elif shape == "through" and ctx.kind == "edge":
+        me = ctx.bnds["edge"].m
+        depth = max(2.0 * mean_dist("edge") - reach_um, 0.0)
+        e_c = _unit(np.cross(n, me)) if np.linalg.norm(np.cross(n, me)) > 1e-6 else EZ
+        zc = abs(float(e_c[2]))
+        length = t / zc if zc > 0.2 else t
+        e_a = in_plane(me)
+        g = max(abs(float(e_a @ me)), 1e-6)
+        base = mu + ((depth - float(ctx.dist("edge", mu[None, :])[0])) / g) * e_a
+        if abs(e_c[2]) > 1e-6:  # centre the front line at mid-thickness
+            base = base + ((0.5 * t - base[2]) / e_c[2]) * e_c
+        front = base + np.linspace(-0.5, 0.5, 33)[:, None] * length * e_c
+        a_fit, c_fit = depth, length
+        dip = length
+    elif shape == "through":
+        depth = t
+        length = max(math.sqrt(12.0 * var_along(e_u)) - 2.0 * reach_um, 0.0)
+        s = np.linspace(0.0, t, 17)[:, None]
+        foot = mu - (mu[2] / e_v[2]) * e_v if abs(e_v[2]) > 1e-6 else mu
+        ends = [foot + sgn * 0.5 * length * e_u for sgn in (-1.0, 1.0)]
+        front = np.vstack([end + s / max(abs(e_v[2]), 1e-6) * e_v for end in ends])
+        a_fit, c_fit = depth, 0.5 * length
+        dip = t / max(abs(float(e_v[2])), 1e-6)
+    else:
+        return None
+    return {
+        "normal": n,
+        "centroid": mu,
+        "depth": depth,
+        "length": length,
+        "front3": front,
+        "span": span,
+        "a": a_fit,
+        "c": c_fit,
+        "dip_um": max(float(dip), 1e-6),
+    }
+
+
+def _crack_mass_bootstrap(
+    q: np.ndarray,
+    e: np.ndarray,
+    psf_cov: np.ndarray,
+    ctx: _CrackCtx,
+    reach_um: float,
+    n_boot: int,
+    rng: np.random.Generator,
+) -> tuple[float, float, float]:
+    """Bootstrap spreads (depth um, length um, inclination deg) of :func:`_crack_from_mass`:
+    voxels resampled with replacement (Efron & Tibshirani 1993), each keeping its excess."""
+    d_b, l_b, i_b = [], [], []
+    for _ in range(int(n_boot)):
+        wts = rng.multinomial(len(e), np.full(len(e), 1.0 / len(e))).astype(float)
+        try:
+            r = _crack_from_mass(q, e * wts, psf_cov, ctx, reach_um)
+        except ValueError:
+            continue
+        if r is None:
+            continue
+        d_b.append(r["depth"])
+        l_b.append(r["length"])
+        i_b.append(plane_angles_deg(r["normal"])[0])
+    return _robust_sd(d_b), _robust_sd(l_b), _robust_sd(i_b)
+
+
+# ---------------------------------------------------------------------------------------------
 # Loops and slip bands
 
 
@@ -1153,10 +1673,18 @@ def measure_loop_points(
     x_uvw=(1, 1, 0),
     seed: int = 0,
     thickening_shape_um: tuple[float, float, float] | None = None,
+    mass: ContrastMass | None = None,
+    point_spread: PointSpread | None = None,
 ) -> dict[str, Any]:
     """Centre, diameter, plane and surface contact of a dislocation loop from its voxels.
 
-    The loop's voxels form a thin ring (or a half ring at a surface): plane fit as for cracks,
+    With ``mass`` (excess intensity around the loop, :func:`contrast_mass`) of at least
+    :data:`MIN_MASS_SNR`: the covariance of the mass less the volume's point-spread is the
+    ring's centre line (a circle of radius R has variance R^2 / 2 along both axes of its plane)
+    plus the tube's own spread (the same along every axis, to first order), so the normal is the
+    least-variance axis, the centre the mass mean and ``R = sqrt(l1 + l2 - 2 l0)`` from the
+    eigenvalues l0 <= l1 <= l2. A label-based circle fits the outside of the blurred tube and
+    comes out one smear half-length too large. Without it, the labels: plane fit as for cracks,
     then a least-squares circle (:class:`skimage.measure.CircleModel`) in the plane.
     """
     p = np.asarray(points_um, float)
@@ -1193,6 +1721,24 @@ def measure_loop_points(
     rho = np.hypot(uv[:, 0] - cu, uv[:, 1] - cv) - radius
     tube = np.column_stack([rho, rel @ n])
     k = math.sqrt(2.0 * float(np.mean(np.sum(tube**2, axis=1)))) / max(_support(shape, n), 1e-12)
+    diameter = 2.0 * radius
+    plane = plane_record(n, fit.rms_um, z_uvw, x_uvw)
+    if mass is not None and len(mass.excess) >= MIN_VOXELS and mass.snr >= MIN_MASS_SNR:
+        psf_cov = (
+            np.zeros((3, 3)) if point_spread is None else np.asarray(point_spread.cov_um2, float)
+        )
+        try:
+            mu, cov = _mass_moments(mass.points_um, mass.excess, psf_cov)
+            lam, vec = np.linalg.eigh(cov)
+        except (ValueError, np.linalg.LinAlgError) as exc:
+            log.debug("measure: loop contrast mass not used (%s)", exc)
+        else:
+            r2 = float(lam[1] + lam[2] - 2.0 * lam[0])
+            if r2 > 0:
+                n_m = _orient(_unit(vec[:, 0]))
+                centre, diameter = mu, 2.0 * math.sqrt(r2)
+                res = (p - mu) @ n_m
+                plane = plane_record(n_m, float(np.sqrt(np.mean(res**2))), z_uvw, x_uvw)
     bnds = _boundaries(centre, WaferEdge(None, 1.0))
     meets = any(
         _touches(p, bnds[s], vx, k, thickness_um, WaferEdge(None, 1.0), shape)
@@ -1200,8 +1746,8 @@ def measure_loop_points(
     )
     return {
         "center_um": [float(v) for v in centre],
-        "diameter_um": 2.0 * radius,
-        "plane": plane_record(n, fit.rms_um, z_uvw, x_uvw),
+        "diameter_um": float(diameter),
+        "plane": plane,
         "meets_surface": bool(meets),
         "voxels": int(len(p)),
     }
@@ -1349,12 +1895,27 @@ def component_points(
 
 
 def _measure_one(
-    block: np.ndarray, comp: dict, meta: dict, ctx: dict
+    lab_block: np.ndarray,
+    img_block: np.ndarray | None,
+    offset_zyx: tuple[int, int, int],
+    comp: dict,
+    meta: dict,
+    ctx: dict,
 ) -> tuple[str, dict | None, str | None]:
-    pts = component_points(block, comp["id"], tuple(comp["bbox_zyx"][:3]), meta)
+    pts = component_points(lab_block, comp["id"], offset_zyx, meta)
     cls = comp["class"]
     vox = tuple(meta["voxel_um"])
+    psf = ctx["psf"]
     try:
+        mass = None
+        if img_block is not None and cls in ("crack", "dislocation_loop"):
+            # a crack's contrast reaches beyond its front (CONTRAST_REACH_UM), which the shell
+            # keeps; a loop's tube has no front, and a shell along x and z (4 um voxels) would
+            # only add noise to its moments
+            shell = (1, 1, 1) if cls == "crack" else (0, 1, 0)
+            mass = contrast_mass(
+                img_block, lab_block, comp["id"], offset_zyx, meta, psf, shell, ctx["edge"]
+            )
         if cls == "crack":
             rec = measure_crack_points(
                 pts,
@@ -1366,6 +1927,8 @@ def _measure_one(
                 bootstrap=ctx["bootstrap"],
                 seed=ctx["seed"] + int(comp["id"]),
                 thickening_shape_um=ctx["shape"],
+                mass=mass,
+                point_spread=psf,
             )
             rec = {"id": int(comp["id"]), **rec, "review": {"status": "unreviewed", "note": ""}}
         elif cls == "dislocation_loop":
@@ -1379,6 +1942,8 @@ def _measure_one(
                     x_uvw=ctx["x_uvw"],
                     seed=ctx["seed"] + int(comp["id"]),
                     thickening_shape_um=ctx["shape"],
+                    mass=mass,
+                    point_spread=psf,
                 ),
             }
             rec["position"] = _position(np.asarray([rec["center_um"]]), ctx["edge"])
@@ -1397,6 +1962,13 @@ def _measure_one(
     except ValueError as exc:
         return cls, None, f"component {comp['id']} ({cls}): not measured ({exc})"
     return cls, rec, None
+
+
+def _scan_step_um(acq: Acquisition) -> float:
+    """The scan step, um: ``scan.step_um`` or the median spacing of ``scan.positions_um``."""
+    if acq.scan.step_um is not None:
+        return abs(float(acq.scan.step_um))
+    return float(np.median(np.abs(np.diff(np.asarray(acq.scan.positions_um, float)))))
 
 
 def thickening_shape_um(
@@ -1455,6 +2027,7 @@ def measure_defects(
     vol = rf.RunFolder(run_root).require(rf.VOLUME, "the reconstructed volume")
     comps_doc = rf.read_json(run_root / rf.COMPONENTS_JSON, "component list (segment output)")
     labels, meta = omezarr.open_labels(vol)
+    image, _ = omezarr.open_image(vol, 0)
     comps = comps_doc.get("components") if isinstance(comps_doc, dict) else None
     if not isinstance(comps, list):
         raise InputError(f"{run_root / rf.COMPONENTS_JSON}: no 'components' list")
@@ -1469,6 +2042,20 @@ def measure_defects(
     grid = {"voxel_um": tuple(meta["voxel_um"]), "origin_um": tuple(meta["origin_um"])}
     shape = thickening_shape_um(comps_doc, grid["voxel_um"])
     log.info("measure: thickening shape (dz, dy, dx) %s um", ", ".join(f"{v:.2f}" for v in shape))
+    psf = volume_point_spread(
+        Geometry.from_acquisition(acq), _scan_step_um(acq), cfg.detector_blur_px, cfg.slit_edge_um
+    )
+    log.info(
+        "measure: volume point-spread along (%.3f, %.3f, %.3f), half-length %.1f um, "
+        "sigma (x, y, z) %s um",
+        *psf.direction,
+        psf.half_length_um,
+        ", ".join(f"{v:.1f}" for v in np.sqrt(np.diag(psf.cov_um2))),
+    )
+    # blocks grown by the smear's reach (its mass) plus a margin for the background around it
+    vxyz = np.asarray(grid["voxel_um"], float)[::-1]
+    reach = np.abs(psf.direction) * psf.half_length_um + BACKGROUND_MARGIN_UM
+    grow = np.ceil(reach / vxyz).astype(int)[::-1] + 2  # z, y, x
     ctx = {
         "thickness_um": thickness_um,
         "edge": edge,
@@ -1477,6 +2064,7 @@ def measure_defects(
         "bootstrap": cfg.bootstrap,
         "seed": cfg.seed,
         "shape": shape,
+        "psf": psf,
     }
     tasks = []
     for i, c in enumerate(comps):
@@ -1501,10 +2089,18 @@ def measure_defects(
                 f"{run_root / rf.COMPONENTS_JSON}: components[{i}].bbox_zyx {bbox} is outside the volume "
                 f"{list(labels.shape)} (accepted: [z0, y0, x0, z1, y1, x1] voxel indices, end exclusive)"
             )
-        block = labels[lo[0] : hi[0], lo[1] : hi[1], lo[2] : hi[2]]
+        glo = np.maximum(lo - grow, 0)
+        ghi = np.minimum(hi + grow, np.asarray(labels.shape))
+        sl = tuple(slice(int(a), int(b)) for a, b in zip(glo, ghi, strict=True))
+        img_block = image[sl] if cls in ("crack", "dislocation_loop") else None
         tasks.append(
             dask.delayed(_measure_one)(
-                block, {"id": cid, "class": cls, "bbox_zyx": bbox}, grid, ctx
+                labels[sl],
+                img_block,
+                tuple(int(v) for v in glo),
+                {"id": cid, "class": cls, "bbox_zyx": bbox},
+                grid,
+                ctx,
             )
         )
     results = run_tasks(tasks, "measure") if tasks else []
