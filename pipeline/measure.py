@@ -117,6 +117,7 @@ from pipeline import runfolder as rf
 from pipeline.compute import run_tasks
 from pipeline.config import Acquisition, MeasureConfig
 from pipeline.crystal import nearest_plane
+from pipeline.crystal import plane_angles as plane_angles_deg
 from pipeline.errors import InputError
 from pipeline.geometry import Geometry
 
@@ -423,22 +424,6 @@ def fit_plane(
     return PlaneFit(
         model.centroid, _orient(_unit(model.normal)), inl, float(np.sqrt(np.mean(r[inl] ** 2)))
     )
-
-
-def plane_angles_deg(normal: np.ndarray) -> tuple[float, float]:
-    """``(inclination_deg, azimuth_deg)`` of a plane with unit ``normal`` (SPEC section 7).
-
-    Inclination: angle between the plane and the wafer surface (90 = perpendicular). Azimuth:
-    direction of the surface trace (the plane's intersection with z = const) from +x toward +y,
-    in [0, 180); 0 for a plane parallel to the surface (no trace).
-    """
-    n = _unit(np.asarray(normal, float))
-    incl = math.degrees(math.acos(min(1.0, abs(float(n[2])))))
-    tx, ty = float(n[1]), float(-n[0])  # trace = n x e_z
-    if math.hypot(tx, ty) < 1e-12:
-        return incl, 0.0
-    az = math.degrees(math.atan2(ty, tx)) % 180.0
-    return incl, 0.0 if az >= 180.0 - 1e-12 else az
 
 
 def plane_record(normal: np.ndarray, fit_rms_um: float, z_uvw, x_uvw) -> dict:

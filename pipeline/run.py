@@ -253,6 +253,13 @@ def prepare(
         # Where the work runs does not change the outputs (same results on every scheduler), so
         # a run may be continued with another compute section (SLURM, then a workstation).
         diff = [k for k in changed_keys(old_inputs, new_inputs) if not k.startswith("config.compute.")]
+        # A key that a newer crackstack added, at its default, is not a change of the user's
+        # inputs (the run folder predates the key); its stage still reruns, because the stage
+        # fingerprint covers the whole section.
+        old_flat = _flatten(old_inputs)
+        defaults = _flatten({"config": RunConfig().model_dump(mode="json")})
+        new_flat = _flatten(new_inputs)
+        diff = [k for k in diff if not (k not in old_flat and k in defaults and new_flat.get(k) == defaults[k])]
         if diff:
             shown = ", ".join(diff[:6]) + (f" and {len(diff) - 6} more" if len(diff) > 6 else "")
             raise InputError(
@@ -266,7 +273,7 @@ def prepare(
                 f"{out}: the input files in {base_dir} changed (names, sizes or modification "
                 "times) since this run folder was made; use a new --out folder"
             )
-        record["config"]["compute"] = new_inputs["config"]["compute"]  # the one in use now
+        record["config"] = new_inputs["config"]  # the compute section in use now, new keys
     else:
         out.mkdir(parents=True, exist_ok=True)
         record = {

@@ -25,6 +25,7 @@ import zarr
 
 from pipeline import run as runmod
 from pipeline import runfolder as rf
+from pipeline.config import RunConfig
 from pipeline.errors import InputError
 
 #: reconstruct's per-slab markers (written after each slab; see pipeline/reconstruct.py).
@@ -120,6 +121,21 @@ def test_changed_compute_section_continues_the_run(small_series, tmp_path):
     )
     with pytest.raises(InputError, match=r"config\.reconstruct\.levels"):
         runmod.prepare(small_series, out, third)
+
+
+def test_key_added_by_a_newer_version_at_its_default_is_not_a_change(small_series, tmp_path):
+    # A run folder made before a configuration key existed continues when the key is at its
+    # default; a non-default value of that key is a change and is refused by name.
+    out = tmp_path / "run"
+    runmod.prepare(small_series, out)
+    record = json.loads((out / "run.json").read_text())
+    del record["config"]["measure"]["slit_edge_um"]  # as written by the older version
+    (out / "run.json").write_text(json.dumps(record))
+    ctx = runmod.prepare(small_series, out)
+    assert ctx.record["config"]["measure"]["slit_edge_um"] == RunConfig().measure.slit_edge_um
+    other = _smallrun.write_config(tmp_path / "d.yaml", {"scheduler": "threads"}, measure={"slit_edge_um": 2.0})
+    with pytest.raises(InputError, match=r"config\.measure\.slit_edge_um"):
+        runmod.prepare(small_series, out, other)
 
 
 def test_changed_input_frames_are_refused(small_series, tmp_path):
