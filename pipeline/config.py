@@ -249,6 +249,38 @@ class SegmentConfig(Strict):
     high_sigma: float | None = Field(None, gt=0, description="hysteresis high threshold, noise sigmas")
     low_sigma: float | None = Field(None, gt=0, description="hysteresis low threshold, noise sigmas")
     min_size_um: float = Field(15.0, ge=0, description="smallest kept component extent, um")
+    surface_gate_deg: float = Field(
+        20.0, ge=0, le=90,
+        description="sheets whose normal is within this angle of z are surface lines or fringes "
+        "and are dropped, deg (a {111} crack has its normal 35.3 deg from z)",
+    )
+    edge_zone_um: float = Field(
+        20.0, ge=0,
+        description="lateral band inside the wafer edge where sheets facing the edge (the edge "
+        "face) are dropped and a component counts as meeting the edge, um",
+    )
+    edge_gate_deg: float = Field(
+        30.0, ge=0, le=90,
+        description="in the edge zone, sheets whose normal is within this angle of the edge "
+        "normal are the edge face and are dropped, deg",
+    )
+    boundary_contact_um: float = Field(
+        12.0, ge=0,
+        description="a component reaching this close to the entrance or exit surface (or into "
+        "the edge zone) meets the boundary: it is a crack, never a dislocation loop, um",
+    )
+    slip_coherence_min: float = Field(
+        0.74, ge=0.5, le=1,
+        description="an interior component whose voxels share one line direction across the "
+        "diffracted ray at least this well (1 = all parallel, 1/2 = turning) is a slip band of "
+        "parallel lines merged into one ribbon",
+    )
+    slip_family_angle_deg: float = Field(
+        12.0, gt=0, le=90, description="slip lines join one band when parallel within this angle, deg"
+    )
+    slip_family_gap_um: float = Field(
+        120.0, gt=0, description="slip lines join one band when closer than this, um"
+    )
 
 
 class MeasureConfig(Strict):

@@ -412,3 +412,47 @@ def line_measure(
     for sl in slabs(out.shape):
         out[sl] = line_from_eigs(*eigvalsh3(*(c[sl] for c in h)), signed=signed)
     return out
+
+
+def sheet_normal_lateral(
+    h: tuple[np.ndarray, ...], e1: np.ndarray, e2: np.ndarray, e3: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Lateral entries ``(P_yy, P_yx, P_xx)`` of the projector ``n n^T`` on the sheet normal
+    (the eigenvector of the eigenvalue with the largest magnitude), so that the squared
+    component of the normal along a lateral unit vector ``e = (e_y, e_x)`` is
+    ``e_y^2 P_yy + 2 e_y e_x P_yx + e_x^2 P_xx``.
+
+    The same spectral projector as :func:`sheet_normal_z2`:
+    ``P = (H - e_a I)(H - e_b I) / ((e_k - e_a)(e_k - e_b))``, with
+    ``[(H - a)(H - b)]_ij = (H^2)_ij - (a + b) H_ij + a b delta_ij``. 0 where the largest
+    eigenvalue is degenerate.
+
+    Parameters
+    ----------
+    h : (hzz, hzy, hzx, hyy, hyx, hxx)
+        Hessian entries.
+    e1, e2, e3 : ndarray
+        Eigenvalues in decreasing order.
+
+    Returns
+    -------
+    (pyy, pyx, pxx) : tuple of float32 ndarray
+    """
+    _, hzy, hzx, hyy, hyx, hxx = h
+    big_is_e3 = np.abs(e3) >= np.abs(e1)
+    ek = np.where(big_is_e3, e3, e1)
+    ea = e2
+    eb = np.where(big_is_e3, e1, e3)
+    s, prod = ea + eb, ea * eb
+    den = (ek - ea) * (ek - eb)
+    ok = den > 0
+    yy = hzy * hzy + hyy * hyy + hyx * hyx - s * hyy + prod
+    xx = hzx * hzx + hyx * hyx + hxx * hxx - s * hxx + prod
+    yx = hzy * hzx + hyy * hyx + hyx * hxx - s * hyx
+    out = []
+    for num in (yy, yx, xx):
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out.append(np.divide(num, den, out=np.zeros_like(num), where=ok).astype(np.float32))
+    np.clip(out[0], 0.0, 1.0, out=out[0])
+    np.clip(out[2], 0.0, 1.0, out=out[2])
+    return out[0], out[1], out[2]
