@@ -79,3 +79,32 @@ def test_voxel_wafer_round_trip(volume):
     idx = np.array([[1.0, 2.0, 3.0], [20.5, 0.0, 43.0]])
     np.testing.assert_allclose(omezarr.wafer_to_voxel(omezarr.voxel_to_wafer(idx, meta), meta), idx)
     np.testing.assert_allclose(omezarr.voxel_to_wafer(np.zeros(3), meta), [100.0, 0.0, -3.4])
+
+
+@pytest.mark.parametrize("shape", [(9, 14, 11), (1, 6, 7)])
+def test_reduce_blocks_matches_scikit_image(shape):
+    """The in-memory pyramid step (used by reconstruct's slabs) against scikit-image's
+    ``measure.block_reduce`` (mean for intensities, max for labels) on the trimmed block; an
+    axis of length 1 is not reduced (factor 1), as in build_pyramid."""
+    from skimage.measure import block_reduce
+
+    rng = np.random.default_rng(3)
+    data = rng.random(shape, dtype=np.float32)
+    labels = rng.integers(0, 5, shape).astype(np.uint32)
+    out_shape = tuple(max(1, s // 2) for s in shape)
+    factors = tuple(2 if s >= 2 else 1 for s in shape)
+    trim = tuple(slice(0, n * f) for n, f in zip(out_shape, factors, strict=True))
+    mean = omezarr.reduce_blocks(data, factors, out_shape)
+    assert mean.dtype == np.float32 and mean.shape == out_shape
+    np.testing.assert_allclose(mean, block_reduce(data[trim], factors, np.mean), rtol=1e-6)
+    np.testing.assert_array_equal(omezarr.reduce_blocks(labels, factors, out_shape, method="max"),
+                                  block_reduce(labels[trim], factors, np.max))
+
+
+def test_slab_level_chunks_keep_slabs_apart():
+    """Level k's x chunk is the level-0 one / 2**k (a slab owns whole chunks at every level);
+    a chunk width the levels cannot halve is refused."""
+    chunks = omezarr.slab_level_chunks((128, 2046, 1040), (64, 128, 128), 3)
+    assert chunks == [(64, 128, 128), (64, 256, 64), (32, 511, 32)]
+    with pytest.raises(ValueError, match="not divisible"):
+        omezarr.slab_level_chunks((10, 10, 10), (4, 4, 6), 3)

@@ -211,6 +211,109 @@ def test_frames_are_streamed_and_flagged_frames_unused(tmp_path):
     assert float(v.max().compute()) < 3.0
 
 
+def test_frames_read_once_per_task(tmp_path):
+    """With one worker the slabs run as one task that keeps the frames neighbouring slabs share
+    (the shear makes them overlap): every frame is read exactly once, as by the I/O floor. With
+    two workers (two tasks, the frames at their border handed over through the progress
+    folder when the neighbour has them first) no frame is read more than twice and the volume
+    is the same."""
+    from pipeline.compute import use_scheduler
+    from pipeline.config import ComputeConfig
+
+    acq = acquisition(TRANSMISSION, thickness_um=100.0)
+    geom, frames, pos, r0, c0 = render(acq, n=40, rows=24, cols=64, points=[])
+    volumes = {}
+    for workers in (1, 2):
+        reads = []
+
+        def counting(block, block_info=None, reads=reads):
+            reads.append(block_info[0]["chunk-location"][0])
+            return block
+
+        series = SimpleNamespace(
+            frames=da.from_array(frames, chunks=(1,) + frames.shape[1:]).map_blocks(counting, dtype=frames.dtype),
+            dark=None, flat=None, monitor=None,
+        )
+        corrected = correct_series(series, CorrectConfig(), band_level=1000.0)
+        out = tmp_path / f"v{workers}.ome.zarr"
+        with use_scheduler(ComputeConfig(workers=workers)):
+            info = reconstruct_volume(corrected, geom, pos, _truth_table(pos, r0, c0),
+                                      ReconstructConfig(chunk_voxels=(8, 8, 4)), out)
+        counts = np.bincount(reads, minlength=40)
+        assert info["blocks_total"] >= 8  # slabs of 4 steps overlap by the 19 um shear
+        assert counts.min() == 1 and counts.max() <= (1 if workers == 1 else 2)
+        assert not (tmp_path / f".v{workers}.ome.zarr.progress" / "handoff").exists()
+        volumes[workers] = np.asarray(omezarr.open_image(out)[0].compute())
+    np.testing.assert_array_equal(volumes[1], volumes[2])
+
+
+def _bilinear_reference(corrected: np.ndarray, geom, pos, r0, c0, meta) -> tuple[np.ndarray, np.ndarray]:
+    """The volume by the formulas of the module docstring, sampled with scipy.ndimage's
+    order-1 ``map_coordinates`` voxel by voxel (an independent bilinear interpolation), and the
+    mask of voxels whose four taps lie inside every frame used (edges are clamped/zero here)."""
+    from scipy import ndimage as ndi
+
+    shape = tuple(meta["shape"])
+    dz, dy, dx = meta["voxel_um"]
+    z0, y0, x0 = meta["origin_um"]
+    z = z0 + dz * np.arange(shape[0])[:, None, None]
+    y = y0 + dy * np.arange(shape[1])[None, :, None]
+    x = x0 + dx * np.arange(shape[2])[None, None, :]
+    z, y, x = np.broadcast_arrays(z, y, x)
+    xp = x - z * geom.tan_psi0
+    f = np.interp(xp, pos, np.arange(pos.size, dtype=float))
+    k0 = np.clip(np.floor(f).astype(int), 0, pos.size - 2)
+    t = (xp - pos[k0]) / (pos[k0 + 1] - pos[k0])
+    inside = (xp >= pos[0]) & (xp <= pos[-1])
+    out = np.zeros(shape)
+    ok = inside.copy()
+    rows, cols = corrected.shape[1:]
+    for k, w in ((k0, 1 - t), (k0 + 1, t)):
+        r = r0[k] + y / geom.p_row_um
+        c = c0[k] + (z * geom.G + (xp - pos[k]) * geom.L) / geom.p_col_um
+        ok &= (r >= 0) & (r < rows - 1) & (c >= 0) & (c < cols - 1)
+        for u in np.unique(k[inside]):
+            sel = inside & (k == u)
+            out[sel] += w[sel] * ndi.map_coordinates(corrected[u].astype(float), [r[sel], c[sel]], order=1)
+    return out, ok
+
+
+def test_resampling_matches_bilinear_reference(small_volume):
+    """Level 0 equals the module's formulas evaluated with scipy's bilinear interpolation
+    (``ndimage.map_coordinates``, order 1) within float32 rounding, on every voxel whose taps
+    are inside the frames; the sparse-matrix formulation must not change the numbers."""
+    path, info, geom, (frames, pos, r0, c0) = small_volume
+    corrected = corrected_of(frames).compute()
+    vol, meta = omezarr.open_image(path)
+    ref, ok = _bilinear_reference(corrected, geom, pos, r0, c0, {**meta, "shape": info["shape"]})
+    assert ok.mean() > 0.5
+    np.testing.assert_allclose(vol.compute()[ok], ref[ok], rtol=1e-5, atol=1e-5)
+
+
+@pytest.mark.parametrize("chunk_x", [8, 2])
+def test_pyramid_levels_are_block_means(tmp_path, chunk_x):
+    """Levels 1.. are 2x2x2 block means of the level above (scikit-image's
+    ``measure.block_reduce`` on the trimmed level), whether each slab writes them from memory
+    (x chunk divisible by 4 at 3 levels: x chunks halve per level) or they are built from level
+    0 afterwards (x chunk 2)."""
+    from skimage.measure import block_reduce
+
+    acq = acquisition(TRANSMISSION, thickness_um=100.0)
+    geom, frames, pos, r0, c0 = render(acq, n=24, rows=40, cols=70, points=[(40.0, 50.0, 50.0)])
+    out = tmp_path / "v.ome.zarr"
+    reconstruct_volume(corrected_of(frames), geom, pos, _truth_table(pos, r0, c0),
+                       ReconstructConfig(chunk_voxels=(8, 16, chunk_x)), out)
+    above = np.asarray(omezarr.open_image(out, 0)[0].compute())
+    for k in (1, 2):
+        level, _ = omezarr.open_image(out, k)
+        data = np.asarray(level.compute())
+        trim = above[tuple(slice(0, 2 * n) for n in data.shape)]
+        np.testing.assert_allclose(data, block_reduce(trim, (2, 2, 2), np.mean), rtol=1e-5, atol=1e-6)
+        expected_x = chunk_x // 2**k if chunk_x == 8 else chunk_x
+        assert level.chunksize[2] == min(expected_x, data.shape[2])
+        above = data
+
+
 @pytest.mark.parametrize(
     "change, message",
     [
