@@ -229,6 +229,9 @@ class RegisterConfig(Strict):
     neighbours: int = Field(2, ge=1, le=10, description="frames compared on each side")
     min_quality: float = Field(0.2, ge=0, le=1, description="quality below which a frame is flagged")
     g_tolerance: float = Field(0.03, gt=0, lt=1, description="warn when measured G differs more")
+    max_row_step_px: float = Field(
+        3.0, gt=0, le=50, description="largest row drift between neighbouring frames searched, px"
+    )
 
 
 class ReconstructConfig(Strict):

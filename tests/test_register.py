@@ -4,6 +4,8 @@ detector, reflection), flagging of unusable frames, the G calibration and the CS
 
 from __future__ import annotations
 
+import json
+import math
 import re
 import sys
 from pathlib import Path
@@ -17,6 +19,7 @@ from scipy import ndimage as ndi
 from scipy import stats
 from scipy.sparse import linalg as sparse_linalg
 
+from pipeline.compute import set_quiet
 from pipeline.config import CorrectConfig, RegisterConfig, load_acquisition
 from pipeline.correct import correct_series
 from pipeline.errors import InputError
@@ -33,6 +36,7 @@ from pipeline.register import (
     surface_edge_model,
     write_registration_csv,
 )
+from synthetic import Scenario, render_series
 
 sys.path.insert(0, str(Path(__file__).parent))
 import _section_series as ss  # noqa: E402
@@ -175,7 +179,11 @@ def test_g_mismatch_warns():
     res = register_frames(reg.corrected[:12], Geometry.from_acquisition(thin), reg.series.positions_um[:12],
                           RegisterConfig())
     assert res.G_measured / res.G_computed == pytest.approx(300 / 280, rel=0.01)
-    assert any(re.search(r"differs from the computed G = [0-9.]+ by \+7\.\d %", w) for w in res.warnings)
+    # the message reports the measured deviation (+7.1 % true; +6.9 % measured on these 12 frames)
+    found = [re.search(r"differs from the computed G = [0-9.]+ by \+(\d+\.\d) %", w) for w in res.warnings]
+    pct = [float(m.group(1)) for m in found if m]
+    assert len(pct) == 1 and pct[0] == pytest.approx(100 * (res.G_measured / res.G_computed - 1), abs=0.06)
+    assert abs(pct[0] - 100 * (300 / 280 - 1)) < 0.5
 
 
 def _corrected(frames: np.ndarray):
@@ -221,3 +229,73 @@ def test_bad_csv(tmp_path, text, message):
         read_registration_csv(p)
     with pytest.raises(InputError, match="registration table not found"):
         read_registration_csv(tmp_path / "missing.csv")
+
+
+# --- wafer edge and a strong crack (forward model) ----------------------------------------------
+
+
+def _edge_crack_scenario():
+    """The transmission case with the wafer edge crossing the frames obliquely (30 deg from the
+    scan axis: rows beyond it are dark, and the dark region's border slides by ~2.8 rows a
+    frame) and a strong vertical through crack whose plane is normal to the scan axis (it
+    crosses the ribbon in ~14 frames, its image moving ~5 columns a frame)."""
+    base = ss.scenario("transmission").model_dump(mode="json")
+    # wafer centre 150 mm from the point (80, 140) um, along the edge's inward normal
+    nx, ny = -0.5, math.sqrt(3) / 2
+    base["wafer"]["center_xy_mm"] = [0.080 - 150.0 * nx, 0.140 - 150.0 * ny]
+    base["defects"].append({"type": "crack", "plane": {"normal": [1.0, 0.0, 0.0]}, "start": "through",
+                            "c_um": 40.0, "position_um": [60.0, 70.0, 150.0], "strength": 3.0})
+    return Scenario.model_validate(base)
+
+
+@pytest.fixture(scope="module")
+def edge_crack(tmp_path_factory):
+    set_quiet(True)
+    folder = render_series(_edge_crack_scenario(), tmp_path_factory.mktemp("edge") / "series")
+    truth = json.loads((folder / "ground_truth.json").read_text())
+    acq, base = load_acquisition(folder / "acquisition.yaml")
+    series = open_series(acq, base)
+    corrected = correct_series(series, CorrectConfig())
+    res = register_frames(corrected, Geometry.from_acquisition(acq), series.positions_um, RegisterConfig())
+    return SimpleNamespace(frames=np.asarray(corrected.compute()), truth=truth, res=res)
+
+
+#: Frames of the edge-crack series whose band shows the crack (checked on the images below;
+#: frame 16 shows its faint halo).
+CRACK_FRAMES = slice(1, 17)
+
+
+def test_edge_and_crack_frames_kept(edge_crack):
+    """No frame is dropped for containing a crack or a stretch of wafer edge; after the frames
+    that show the crack (the wafer edge in all of them) the known drift (0.3 px rms per frame)
+    is recovered to <= 0.25 px rms in rows and columns (issue 4): the rows beyond the edge are
+    masked. (Across the crack frames errors accumulate: see the xfail test below.)"""
+    frames, truth, res = edge_crack.frames, edge_crack.truth, edge_crack.res
+    # the scene does what the test needs: dark rows in every frame, the crack in several
+    band = frames[:, :, 30:70].mean(axis=2)
+    assert (band < 0.2).sum(axis=1).min() >= 5
+    bright = np.percentile(frames[:, 5:50, 30:75], 99.5, axis=(1, 2)) > 2.5  # surface lines: ~1.6
+    assert bright[1:16].all() and not bright[0] and not bright[17:].any()
+    t = res.table
+    assert res.flagged == [] and not t["flagged"].any()
+    rest = np.zeros(len(t["frame"]), bool)
+    rest[CRACK_FRAMES.stop :] = True
+    r_err = (t["r0_px"] - np.asarray(truth["origins"]["r0_px"]))[rest]
+    c_err = (t["c0_px"] - np.asarray(truth["origins"]["c0_px"]))[rest]
+    assert ss.rms(r_err - r_err.mean()) <= 0.25
+    assert ss.rms(c_err - c_err.mean()) <= 0.25
+    assert abs(c_err.mean()) <= 0.5
+
+
+@pytest.mark.xfail(strict=True, reason="known limitation: a strong crack line across most rows of the "
+                   "band is taken for the entrance surface (column origin off by up to 32 px) and biases "
+                   "the row shifts (1.9 px accumulated over 16 frames)")
+def test_crack_frames_origins(edge_crack):
+    """The origins of the frames that show the strong crack within 0.5 px (rows: relative to
+    the frames after it)."""
+    t, truth = edge_crack.res.table, edge_crack.truth
+    c_err = t["c0_px"] - np.asarray(truth["origins"]["c0_px"])
+    r_err = t["r0_px"] - np.asarray(truth["origins"]["r0_px"])
+    after = slice(CRACK_FRAMES.stop, None)
+    assert np.abs(c_err[CRACK_FRAMES] - np.median(c_err[after])).max() <= 0.5
+    assert np.abs(r_err[: CRACK_FRAMES.stop] - np.median(r_err[after])).max() <= 0.5
