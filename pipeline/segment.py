@@ -191,6 +191,12 @@ MIN_LINE_VOXELS = 40
 FRAGMENT_AXIS_UM = 15.0
 #: Dask compute chunk (z, y, x) voxels; clipped to the volume, grown to at least the halo.
 COMPUTE_CHUNKS = (256, 256, 256)
+#: Volumes up to this many voxels keep their raw responses between the statistics and the
+#: labelling (about 4 x (responses + 2) bytes per voxel: ~1.3 GB at 64 M voxels with the
+#: default three responses), so the filter bank runs once and the response statistics cover
+#: every wafer voxel; larger ones take the statistics on lateral windows and compute the
+#: responses again for labelling.
+KEEP_RESPONSES_MAX_VOXELS = 64_000_000
 #: Lateral window size (voxels) and grid for the noise statistics.
 SAMPLE_WINDOW = 96
 SAMPLE_GRID = 3
@@ -405,7 +411,9 @@ def _residual(
         # mode="nearest": the array's own border is not a wafer edge.
         mask = ndi.minimum_filter(mask, size=(1, 2 * ey + 1, 2 * ex + 1), mode="nearest")
     col = np.nan_to_num(np.asarray(bg_zx, np.float32))[:, None, :]
-    res = np.where(mask, block - b - col, np.float32(0)).astype(np.float32)
+    res = block - b
+    res -= col
+    res[~mask] = 0
     return res, mask
 
 
@@ -460,14 +468,37 @@ def _edge_zone(mask: np.ndarray, p: _Params) -> tuple[np.ndarray, np.ndarray, np
         zero = np.zeros(mask.shape, np.float32)
         return zone, zero, zero, beyond
     sy, sx = _edge_smooth_vox(p.edge_zone_um, p.voxel_um)
-    g = ndi.gaussian_filter(mask.astype(np.float32), (0, sy, sx), mode="nearest", truncate=TRUNCATE_EDGE)
+    # The normal is needed in the zone and the band beyond only: smooth the box around them
+    # grown by the Gaussian's radius and the gradient's stencil (the values there are those of
+    # the whole block; the edge is usually one side of a block, so this saves most of a
+    # 70-100 tap filter over the block).
+    need = zone | beyond
+    zi = np.nonzero(need.any(axis=(1, 2)))[0]
+    yi = np.nonzero(need.any(axis=(0, 2)))[0]
+    xi = np.nonzero(need.any(axis=(0, 1)))[0]
+    ry, rx = (int(TRUNCATE_EDGE * v + 0.5) + 2 for v in (sy, sx))
+    crop = (slice(int(zi[0]), int(zi[-1]) + 1),
+            slice(max(int(yi[0]) - ry, 0), min(int(yi[-1]) + 1 + ry, mask.shape[1])),
+            slice(max(int(xi[0]) - rx, 0), min(int(xi[-1]) + 1 + rx, mask.shape[2])))
+    g = ndi.gaussian_filter(mask[crop].astype(np.float32), (0, sy, sx), mode="nearest",
+                            truncate=TRUNCATE_EDGE)
     gy = np.gradient(g, axis=1) / np.float32(p.voxel_um[1])
     gx = np.gradient(g, axis=2) / np.float32(p.voxel_um[2])
     norm = np.hypot(gy, gx)
-    ok = (zone | beyond) & (norm > 0)
-    ey = np.where(ok, gy / np.where(ok, norm, 1), 0).astype(np.float32)
-    ex = np.where(ok, gx / np.where(ok, norm, 1), 0).astype(np.float32)
+    ok = need[crop] & (norm > 0)
+    ey = np.zeros(mask.shape, np.float32)
+    ex = np.zeros(mask.shape, np.float32)
+    ey[crop] = np.where(ok, gy / np.where(ok, norm, 1), 0)
+    ex[crop] = np.where(ok, gx / np.where(ok, norm, 1), 0)
     return zone, ey, ex, beyond
+
+
+def _edge_zone_only(mask: np.ndarray, p: _Params) -> np.ndarray:
+    """The edge zone of :func:`_edge_zone` alone (no edge normal: a third of its time)."""
+    zy, zx = p.edge_zone_vox
+    if zy == 0 and zx == 0:
+        return np.zeros(mask.shape, bool)
+    return mask & ~ndi.minimum_filter(mask, size=(1, 2 * zy + 1, 2 * zx + 1), mode="nearest")
 
 
 def _raw_responses(res: np.ndarray, p: _Params, edge: tuple[np.ndarray, np.ndarray] | None = None
@@ -494,9 +525,14 @@ def _raw_responses(res: np.ndarray, p: _Params, edge: tuple[np.ndarray, np.ndarr
                 v = sheet_from_eigs(*e, signed=True)
                 v[sheet_normal_z2(hs, *e) > cos2] = 0
                 if use_edge:
-                    ey, ex = edge[0][sl], edge[1][sl]
-                    pyy, pyx, pxx = sheet_normal_lateral(hs, *e)
-                    v[ey * ey * pyy + 2 * ey * ex * pyx + ex * ex * pxx > cos2e] = 0
+                    # Only where the edge normal is set (the edge zone and the band beyond):
+                    # elsewhere the projection is 0 and nothing is gated.
+                    at = np.nonzero((edge[0][sl] != 0) | (edge[1][sl] != 0))
+                    if at[0].size:
+                        ey, ex = edge[0][sl][at], edge[1][sl][at]
+                        pyy, pyx, pxx = sheet_normal_lateral(tuple(c[at] for c in hs), *(x[at] for x in e))
+                        gate = ey * ey * pyy + 2 * ey * ex * pyx + ex * ex * pxx > cos2e
+                        v[tuple(i[gate] for i in at)] = 0
                 sheet[sl] = v
             if line is not None:
                 line[sl] = line_from_eigs(*e, signed=True)
@@ -521,13 +557,13 @@ def _response(raw: dict, stats: _Stats, shape) -> tuple[np.ndarray, np.ndarray]:
     return np.maximum(zs, zl), zl > zs
 
 
-def _response_block(block, bg_zy, bg_zx, stats: _Stats, p: _Params
-                    ) -> tuple[np.ndarray, np.ndarray, tuple[np.ndarray, np.ndarray, np.ndarray]]:
-    """Defect response (noise units) of one block with its halo, the line-dominated flag and
-    ``(e_y, e_x, contact)``: the lateral edge normal in the edge zone ((0, 0) elsewhere) and
-    whether the voxel lies within ``boundary_contact_um`` of the wafer edge."""
-    res, mask = _residual(block, bg_zy, bg_zx, stats.band, p.erosion_vox)
-    res = _destreak(res, stats.noise_sigma)
+def _block_geometry(block, bg_zy, bg_zx, band: float, p: _Params) -> dict:
+    """What one block with its halo gives before the noise level is known: the residual
+    (``res``, before :func:`_destreak`), the wafer mask less the edge zone (``sample``: where the
+    noise and the response statistics are taken), the band beyond the edge (``beyond``) and
+    ``edge`` = ``(e_y, e_x, contact)``: the lateral edge normal in the edge zone ((0, 0)
+    elsewhere) and whether the voxel lies within ``boundary_contact_um`` of the wafer edge."""
+    res, mask = _residual(block, bg_zy, bg_zx, band, p.erosion_vox)
     zone, ey, ex, beyond = _edge_zone(mask, p)
     # Contact with the wafer edge: within boundary_contact_um (plus the eroded rim) of a voxel
     # that is lit but holds no crystal (dark, not exactly 0). The borders of the lit region
@@ -537,14 +573,40 @@ def _response_block(block, bg_zy, bg_zx, stats: _Stats, p: _Params
     dark_lit = (np.asarray(block) != 0) & (np.asarray(block) < MASK_FRACTION * bgr) & (bgr > 0)
     reach = (1, 2 * (cy + EDGE_ERODE_VOX + 1) + 1, 2 * (cx + EDGE_ERODE_VOX + 1) + 1)
     contact = zone & ndi.maximum_filter(dark_lit, size=reach, mode="constant", cval=False)
-    resp, line = _response(_raw_responses(res, p, (ey, ex)), stats, res.shape)
+    return {"res": res, "sample": mask & ~zone, "beyond": beyond, "edge": (ey, ex, contact)}
+
+
+def _geometry_raw(g: dict, noise_sigma: float, p: _Params) -> dict[tuple[str, float], np.ndarray]:
+    """Signed raw responses (edge-gated) of a block from :func:`_block_geometry`. The edge gate
+    only acts where the edge normal is set (zone and band beyond), so outside the edge zone
+    they equal the ungated responses the statistics are defined on."""
+    return _raw_responses(_destreak(g["res"], noise_sigma), p, g["edge"][:2])
+
+
+def _block_fields(block, bg_zy, bg_zx, band: float, noise_sigma: float, p: _Params) -> dict:
+    """:func:`_block_geometry` plus the raw responses (``raw``) of one block with its halo."""
+    g = _block_geometry(block, bg_zy, bg_zx, band, p)
+    return {**g, "raw": _geometry_raw(g, noise_sigma, p)}
+
+
+def _fields_response(f: dict, stats: _Stats) -> tuple[np.ndarray, np.ndarray, tuple]:
+    """Defect response (noise units), line-dominated flag and edge arrays from
+    :func:`_block_fields`."""
+    resp, line = _response(f["raw"], stats, f["beyond"].shape)
     # Beyond the edge the residual is 0 by construction: what responds there is the flank of
     # the edge step, not a defect.
-    resp[beyond] = 0
+    resp[f["beyond"]] = 0
     # Per voxel: the edge normal (0, 0 outside the zone and the band beyond it, where the
     # response is 0) and the contact flag; kept as three arrays (a stacked copy would triple
     # the block's memory), picked at the kept voxels only by _label_response.
-    return resp, line, (ey, ex, contact)
+    return resp, line, f["edge"]
+
+
+def _response_block(block, bg_zy, bg_zx, stats: _Stats, p: _Params
+                    ) -> tuple[np.ndarray, np.ndarray, tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """Defect response (noise units) of one block with its halo, the line-dominated flag and
+    ``(e_y, e_x, contact)`` (see :func:`_block_fields`)."""
+    return _fields_response(_block_fields(block, bg_zy, bg_zx, stats.band, stats.noise_sigma, p), stats)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -577,6 +639,14 @@ def _windows(shape: tuple[int, int, int]) -> list[tuple[slice, slice, slice]]:
     return [(slice(0, nz), slice(a, b), slice(c, d)) for a, b in starts(ny) for c, d in starts(nx)]
 
 
+def _windows_yx(shape: tuple[int, int, int]) -> np.ndarray:
+    """(y, x) columns covered by the sample windows of :func:`_windows` (full depth)."""
+    out = np.zeros(shape[1:], bool)
+    for _, sy, sx in _windows(shape):
+        out[sy, sx] = True
+    return out
+
+
 def _read_with_halo(vol: da.Array, win, depth) -> tuple[np.ndarray, tuple[slice, ...], list, list]:
     """The window plus its halo (clipped to the array), the window inside it, and the bounds."""
     lo = [max(0, s.start - d) for s, d in zip(win, depth, strict=True)]
@@ -586,20 +656,24 @@ def _read_with_halo(vol: da.Array, win, depth) -> tuple[np.ndarray, tuple[slice,
     return block, inner, lo, hi
 
 
-def _statistics(vol: da.Array, bg: tuple[np.ndarray, np.ndarray], band: float, p: _Params) -> _Stats:
-    """Noise level of the residual and median / spread of every signed response, measured on
-    lateral windows placed independently of the chunking (so chunked == unchunked)."""
-    pieces_r, pieces = [], {}
-    blocks = []
+def _window_residuals(vol: da.Array, bg: tuple[np.ndarray, np.ndarray], band: float, p: _Params
+                      ) -> tuple[float, list]:
+    """Noise level of the residual inside the wafer (1.4826 MAD, away from the edge zone: the
+    blurred edge step there is no noise), measured on lateral windows placed independently of
+    the chunking (so chunked == unchunked); and the windows' residuals, masks and inner parts."""
+    pieces_r, blocks = [], []
     for win in _windows(vol.shape):
         block, inner, lo, hi = _read_with_halo(vol, win, p.depth)
         res, mask = _residual(block, bg[0][lo[0]:hi[0], lo[1]:hi[1]], bg[1][lo[0]:hi[0], lo[2]:hi[2]],
                               band, p.erosion_vox)
-        # Statistics away from the edge zone: the blurred edge step there is no noise.
-        mask = mask & ~_edge_zone(mask, p)[0]
+        mask = mask & ~_edge_zone_only(mask, p)
         blocks.append((res, mask, inner))
         pieces_r.append(res[inner][mask[inner]])
-    r = np.concatenate(pieces_r)
+    return _noise_sigma(np.concatenate(pieces_r)), blocks
+
+
+def _noise_sigma(r: np.ndarray) -> float:
+    """1.4826 MAD of the residual sample ``r`` (InputError when too small or constant)."""
     if r.size < 1000:
         raise InputError(f"volume: only {r.size} voxels inside the wafer in the sampled windows; "
                          "segment needs the perfect-crystal band (intensity ~1) in the volume")
@@ -607,12 +681,12 @@ def _statistics(vol: da.Array, bg: tuple[np.ndarray, np.ndarray], band: float, p
     if not noise > 0:
         raise InputError("volume: the residual inside the wafer has zero spread (constant values?); "
                          "segment needs a measured volume with noise to set its thresholds")
-    stats = _Stats(band=band, noise_sigma=noise)
-    for res, mask, inner in blocks:
-        raw = _raw_responses(_destreak(res, noise), p)
-        sel = mask[inner]
-        for key, arr in raw.items():
-            pieces.setdefault(key, []).append(arr[inner][sel])
+    return noise
+
+
+def _response_stats(stats: _Stats, pieces: dict[tuple[str, float], list[np.ndarray]], p: _Params) -> _Stats:
+    """Median and noise unit (MAD times the white-noise tail ratio) of every signed response
+    from its values at the sampled wafer voxels."""
     ratios = _tail_ratios(p)
     for key, parts in pieces.items():
         v = np.concatenate(parts)
@@ -622,6 +696,21 @@ def _statistics(vol: da.Array, bg: tuple[np.ndarray, np.ndarray], band: float, p
         unit = spread * ratios[key]
         stats.response[key] = (med, unit if unit > 0 else 1e-12)
     return stats
+
+
+def _statistics(vol: da.Array, bg: tuple[np.ndarray, np.ndarray], band: float, p: _Params) -> _Stats:
+    """Noise level of the residual and median / spread of every signed response, measured on
+    lateral windows placed independently of the chunking (so chunked == unchunked). Used for
+    volumes too large to keep their responses (:data:`KEEP_RESPONSES_MAX_VOXELS`)."""
+    noise, blocks = _window_residuals(vol, bg, band, p)
+    stats = _Stats(band=band, noise_sigma=noise)
+    pieces: dict = {}
+    for res, mask, inner in blocks:
+        raw = _raw_responses(_destreak(res, noise), p)
+        sel = mask[inner]
+        for key, arr in raw.items():
+            pieces.setdefault(key, []).append(arr[inner][sel])
+    return _response_stats(stats, pieces, p)
 
 
 def _tail_ratios(p: _Params) -> dict[tuple[str, float], float]:
@@ -682,6 +771,41 @@ def _label_block(block, bg_zy, bg_zx, index, nblocks, lo_g, trim_lo, trim_hi, st
                            tuple(a[inner] for a in zone))
 
 
+def _trim(trim_lo, trim_hi, shape) -> tuple[slice, ...]:
+    return tuple(slice(a, n - b) for a, b, n in zip(trim_lo, trim_hi, shape, strict=True))
+
+
+def _geometry_block(block, bg_zy, bg_zx, trim_lo, trim_hi, band: float, p: _Params,
+                    windows_yx: np.ndarray) -> tuple[dict, np.ndarray]:
+    """:func:`_block_geometry` of one block with its halo, and the residual at the block's
+    wafer voxels outside the edge zone in the (y, x) columns of the sample windows
+    (``windows_yx``, the block's part of :func:`_windows_yx`): the noise sample, the same voxels
+    and values as :func:`_window_residuals` takes, whatever the chunking."""
+    g = _block_geometry(block, bg_zy, bg_zx, band, p)
+    inner = _trim(trim_lo, trim_hi, block.shape)
+    return g, g["res"][inner][g["sample"][inner] & windows_yx[None, :, :]]
+
+
+def _fields_block(g: dict, trim_lo, trim_hi, noise_sigma: float, p: _Params,
+                  windows_yx: np.ndarray) -> dict:
+    """Raw responses of one block from :func:`_block_geometry`, everything trimmed to the block
+    (copies, so that the halo's memory is freed while the fields wait for the statistics).
+    The statistics' sample is restricted to the sample windows' columns as the noise's."""
+    inner = _trim(trim_lo, trim_hi, g["res"].shape)
+    raw = _geometry_raw(g, noise_sigma, p)
+    return {"raw": {k: np.ascontiguousarray(v[inner]) for k, v in raw.items()},
+            "sample": g["sample"][inner] & windows_yx[None, :, :],
+            "beyond": np.ascontiguousarray(g["beyond"][inner]),
+            "edge": tuple(np.ascontiguousarray(a[inner]) for a in g["edge"])}
+
+
+def _label_fields(f: dict, index, nblocks, lo_g, stats: _Stats, p: _Params) -> dict:
+    """Phase 1 from kept fields (:func:`_fields_block`): the response, then
+    :func:`_label_response`."""
+    resp, line, edge = _fields_response(f, stats)
+    return _label_response(resp, index, nblocks, lo_g, p.low, p.high, line, edge)
+
+
 def _label_response(resp: np.ndarray, index, nblocks, lo_g, low: float, high: float,
                     line: np.ndarray | None = None, edge: tuple | None = None) -> dict:
     """Hysteresis candidates and local labels (26-connected) of one block's response.
@@ -699,7 +823,11 @@ def _label_response(resp: np.ndarray, index, nblocks, lo_g, low: float, high: fl
         return {"coords": np.zeros((0, 3), np.int32), "lab": np.zeros(0, np.int32),
                 "z": np.zeros(0, np.float32), "line": np.zeros(0, bool), "edge": np.zeros((0, 3), np.float32),
                 "seeded": np.zeros(0, bool), "n": 0}
-    seeded = np.asarray(ndi.maximum(resp, lab, index=np.arange(1, n + 1)) > high, bool)
+    # A component is seeded when any of its voxels exceeds ``high`` (the same as its maximum
+    # doing so; ndi.maximum per label sorts all labelled voxels and took ~10 s on 30 M voxels).
+    seeded = np.zeros(n + 1, bool)
+    seeded[lab[resp > high]] = True
+    seeded = seeded[1:]
     touch = np.zeros(n + 1, bool)
     for ax in range(3):
         if index[ax] > 0:
@@ -1146,18 +1274,14 @@ def segment_array(
     q50 = np.concatenate([q[:, q.shape[1] // 2:] for q in parts], axis=1)
     bg_zx = _column_background(q25, q50)
     bg = (bg_zy, bg_zx)
-    stats = _statistics(vol, bg, band, p)
-    log.info("segment: band %.3f, noise sigma %.4f, thresholds high %.1f / low %.1f noise sigmas",
-             band, stats.noise_sigma, p.high, p.low)
-
     cchunks = _compute_chunks(shape, p.depth, chunks or COMPUTE_CHUNKS)
     vc = vol.rechunk(cchunks)
     depth = {ax: (p.depth[ax] if len(cchunks[ax]) > 1 else 0) for ax in range(3)}
     vo = da.overlap.overlap(vc, depth=depth, boundary="none")
     nblocks = tuple(len(c) for c in cchunks)
     starts = [np.concatenate([[0], np.cumsum(c)]) for c in cchunks]
-    tasks, bounds = [], []
     delayed_blocks = vo.to_delayed()
+    blocks = []
     for index in np.ndindex(*nblocks):
         lo = [int(starts[a][index[a]]) for a in range(3)]
         hi = [int(starts[a][index[a] + 1]) for a in range(3)]
@@ -1166,9 +1290,40 @@ def segment_array(
         zs = slice(lo[0] - tlo[0], hi[0] + thi[0])
         bzy = bg_zy[zs, lo[1] - tlo[1]:hi[1] + thi[1]]
         bzx = bg_zx[zs, lo[2] - tlo[2]:hi[2] + thi[2]]
-        tasks.append(dask.delayed(_label_block)(delayed_blocks[index], bzy, bzx, index, nblocks, lo,
-                                                tlo, thi, stats, p))
-        bounds.append((lo, hi))
+        blocks.append((index, lo, hi, tlo, thi, bzy, bzx))
+    bounds = [(lo, hi) for _, lo, hi, *_ in blocks]
+    keep = float(np.prod(shape)) <= KEEP_RESPONSES_MAX_VOXELS
+    if keep:
+        # One pass of the filter bank: the residual of every block is kept while the noise
+        # level is taken, then the responses while their statistics are taken, then they are
+        # labelled. Both statistics use the wafer voxels outside the edge zone in the sample
+        # windows' columns: the same voxels and values as :func:`_statistics`.
+        win_yx = _windows_yx(shape)
+        wins = [win_yx[lo[1]:hi[1], lo[2]:hi[2]] for _, lo, hi, *_ in blocks]
+        geo = run_tasks([dask.delayed(_geometry_block)(delayed_blocks[index], bzy, bzx, tlo, thi,
+                                                       band, p, w)
+                         for (index, _, _, tlo, thi, bzy, bzx), w in zip(blocks, wins, strict=True)],
+                        "segment: residual")
+        noise = _noise_sigma(np.concatenate([r for _, r in geo]))
+        fields = run_tasks([dask.delayed(_fields_block)(g, b[3], b[4], noise, p, w)
+                            for (g, _), b, w in zip(geo, blocks, wins, strict=True)],
+                           "segment: responses")
+        del geo
+        pieces: dict = {}
+        for f in fields:
+            for key, arr in f["raw"].items():
+                pieces.setdefault(key, []).append(arr[f["sample"]])
+        stats = _response_stats(_Stats(band=band, noise_sigma=noise), pieces, p)
+        del pieces
+        tasks = [dask.delayed(_label_fields)(f, b[0], nblocks, b[1], stats, p)
+                 for f, b in zip(fields, blocks, strict=True)]
+    else:
+        stats = _statistics(vol, bg, band, p)
+        tasks = [dask.delayed(_label_block)(delayed_blocks[index], bzy, bzx, index, nblocks, lo,
+                                            tlo, thi, stats, p)
+                 for index, lo, _, tlo, thi, bzy, bzx in blocks]
+    log.info("segment: band %.3f, noise sigma %.4f, thresholds high %.1f / low %.1f noise sigmas",
+             band, stats.noise_sigma, p.high, p.low)
     parts = run_tasks(tasks, "segment")
     comps = _merge_blocks(parts, bounds, shape)
 
