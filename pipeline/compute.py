@@ -197,6 +197,13 @@ def _process_pool(workers: int | None) -> Iterator[Any]:
         pool.shutdown(wait=True, cancel_futures=True)
 
 
+def shares_memory() -> bool:
+    """True when task results stay in this process (the threads scheduler): keeping large
+    intermediate arrays between task rounds is then free, while under processes or a cluster
+    every such array would travel between processes twice."""
+    return _state["client"] is None and _state.get("scheduler", "threads") == "threads"
+
+
 def n_workers() -> int:
     """Number of parallel workers of the active scheduler (for sizing task batches)."""
     if _state["client"] is not None:
