@@ -69,6 +69,7 @@ def _segment(scn, folder: Path) -> tuple[dict, dict]:
     from pipeline.register import read_registration_csv, write_registration_csv
     from pipeline.segment import segment_volume
     from synthetic import render_series
+    from synthetic.evaluate import truth_registration
 
     set_quiet(True)
     series = render_series(scn, folder / "series")
@@ -76,13 +77,7 @@ def _segment(scn, folder: Path) -> tuple[dict, dict]:
     acq, base = load_acquisition(series / "acquisition.yaml")
     run = folder / "run"
     run.mkdir(parents=True)
-    r0 = np.asarray(truth["origins"]["r0_px"], float)
-    c0 = np.asarray(truth["origins"]["c0_px"], float)
-    n = len(r0)
-    table = {"frame": np.arange(n), "position_um": np.asarray(truth["positions_um"], float),
-             "r0_px": r0, "c0_px": c0, "row_shift_px": r0 - r0[0], "col_shift_px": c0 - c0[0],
-             "quality": np.ones(n), "flagged": np.zeros(n, int), "interpolated": np.zeros(n, int)}
-    write_registration_csv(run / rf.REGISTRATION_CSV, table)
+    write_registration_csv(run / rf.REGISTRATION_CSV, truth_registration(truth))
     frames = open_series(acq, base)
     reconstruct_volume(correct_series(frames, RunConfig().correct), Geometry.from_acquisition(acq),
                        frames.positions_um, read_registration_csv(run / rf.REGISTRATION_CSV),

@@ -81,6 +81,7 @@ def run_scenario(seed: int, photons: float, folder: Path, *, registration: str =
     from pipeline.run import run_pipeline
     from pipeline.segment import segment_volume
     from synthetic import render_series, score
+    from synthetic.evaluate import truth_registration
 
     set_quiet(True)
     series = render_series(scenario(seed, photons), folder / "series")
@@ -91,13 +92,7 @@ def run_scenario(seed: int, photons: float, folder: Path, *, registration: str =
         run_pipeline(series / "acquisition.yaml", run, stages=("register", "reconstruct"))
     else:
         run.mkdir(parents=True)
-        r0 = np.asarray(truth["origins"]["r0_px"], float)
-        c0 = np.asarray(truth["origins"]["c0_px"], float)
-        n = len(r0)
-        table = {"frame": np.arange(n), "position_um": np.asarray(truth["positions_um"], float),
-                 "r0_px": r0, "c0_px": c0, "row_shift_px": r0 - r0[0], "col_shift_px": c0 - c0[0],
-                 "quality": np.ones(n), "flagged": np.zeros(n, int), "interpolated": np.zeros(n, int)}
-        write_registration_csv(run / rf.REGISTRATION_CSV, table)
+        write_registration_csv(run / rf.REGISTRATION_CSV, truth_registration(truth))
         frames = open_series(acq, base)
         corrected = correct_series(frames, RunConfig().correct)
         reconstruct_volume(corrected, Geometry.from_acquisition(acq), frames.positions_um,
