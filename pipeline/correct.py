@@ -44,6 +44,7 @@ import numpy as np
 from dask.base import tokenize
 from scipy import ndimage as ndi
 
+from pipeline.compute import compute_here
 from pipeline.config import CorrectConfig
 from pipeline.errors import InputError
 
@@ -244,7 +245,7 @@ def estimate_band_level(
     idx = np.unique(np.linspace(0, n - 1, min(n, n_samples)).round().astype(int))
     levels = []
     for k in idx:
-        x = np.asarray(frames[k].compute(), np.float32)
+        x = np.asarray(compute_here(frames[k]), np.float32)
         if dark is not None:
             x = x - dark
         if inv_gain is not None:

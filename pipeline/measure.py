@@ -115,7 +115,7 @@ from skimage.measure import CircleModel, EllipseModel, LineModelND, find_contour
 
 from pipeline import omezarr
 from pipeline import runfolder as rf
-from pipeline.compute import run_tasks
+from pipeline.compute import InTask, in_task, materialize, run_tasks
 from pipeline.config import Acquisition, MeasureConfig
 from pipeline.crystal import nearest_plane
 from pipeline.crystal import plane_angles as plane_angles_deg
@@ -1892,13 +1892,16 @@ def component_points(
 
 
 def _measure_one(
-    lab_block: np.ndarray,
-    img_block: np.ndarray | None,
+    lab_block: np.ndarray | InTask,
+    img_block: np.ndarray | InTask | None,
     offset_zyx: tuple[int, int, int],
     comp: dict,
     meta: dict,
     ctx: dict,
 ) -> tuple[str, dict | None, str | None]:
+    # the blocks are read here, in the task (pipeline.compute.in_task)
+    lab_block = materialize(lab_block)
+    img_block = None if img_block is None else materialize(img_block)
     pts = component_points(lab_block, comp["id"], offset_zyx, meta)
     cls = comp["class"]
     vox = tuple(meta["voxel_um"])
@@ -2089,10 +2092,10 @@ def measure_defects(
         glo = np.maximum(lo - grow, 0)
         ghi = np.minimum(hi + grow, np.asarray(labels.shape))
         sl = tuple(slice(int(a), int(b)) for a, b in zip(glo, ghi, strict=True))
-        img_block = image[sl] if cls in ("crack", "dislocation_loop") else None
+        img_block = in_task(image[sl]) if cls in ("crack", "dislocation_loop") else None
         tasks.append(
             dask.delayed(_measure_one)(
-                labels[sl],
+                in_task(labels[sl]),
                 img_block,
                 tuple(int(v) for v in glo),
                 {"id": cid, "class": cls, "bbox_zyx": bbox},

@@ -206,11 +206,15 @@ def build_pyramid(group_path: str | Path, *, method: str = "mean") -> None:
     above, so the cost is about 1/7 of the level-0 size in reads.
     """
     grp = zarr.open_group(str(group_path), mode="r+")
+    # All levels in one store call, each reduced from the one above in the graph (not read back
+    # from disk): one scheduler round trip per pyramid instead of per level, which under a
+    # distributed client cost ~0.1 s each on the small bench run.
+    above = da.from_zarr(grp["0"])
+    sources, targets = [], []
     k = 1
     while str(k) in grp:
-        src = da.from_zarr(grp[str(k - 1)])
         dst = grp[str(k)]
-        trimmed = src[tuple(slice(0, 2 * s) if s * 2 <= n else slice(0, n) for s, n in zip(dst.shape, src.shape, strict=True))]
+        trimmed = above[tuple(slice(0, 2 * s) if s * 2 <= n else slice(0, n) for s, n in zip(dst.shape, above.shape, strict=True))]
         axes = {i: (2 if trimmed.shape[i] >= 2 * dst.shape[i] else 1) for i in range(3)}
         if method == "max":
             red = da.coarsen(np.max, trimmed, axes, trim_excess=True)
@@ -218,8 +222,12 @@ def build_pyramid(group_path: str | Path, *, method: str = "mean") -> None:
             red = da.coarsen(np.mean, trimmed.astype("float32"), axes, trim_excess=True)
         # Chunks aligned with the zarr chunks, so no two tasks write the same chunk.
         red = red.astype(dst.dtype).rechunk(dst.chunks)
-        da.store(red, dst, lock=False)
+        sources.append(red)
+        targets.append(dst)
+        above = red
         k += 1
+    if sources:
+        da.store(sources, targets, lock=False)
 
 
 def read_meta(path: str | Path) -> dict:

@@ -67,7 +67,7 @@ from scipy import sparse
 
 from pipeline import omezarr
 from pipeline import runfolder as rf
-from pipeline.compute import n_workers, run_tasks
+from pipeline.compute import compute_here, n_workers, run_tasks
 from pipeline.config import ReconstructConfig
 from pipeline.errors import InputError
 from pipeline.geometry import Geometry, natural_voxel_um
@@ -454,7 +454,7 @@ def _probe_depth_um(corrected: da.Array, usable: np.ndarray, c0: np.ndarray, geo
     acc = np.zeros(u.size)
     cnt = np.zeros(u.size)
     for k in pick:
-        prof = np.nanmean(np.asarray(corrected[k].compute(), np.float64), axis=0)
+        prof = np.nanmean(np.asarray(compute_here(corrected[k]), np.float64), axis=0)
         v = np.interp(u + c0[k], np.arange(cols), prof, left=np.nan, right=np.nan)
         ok = np.isfinite(v)
         acc[ok] += v[ok]

@@ -82,7 +82,7 @@ from scipy.optimize import least_squares
 from scipy.sparse import linalg as sparse_linalg
 
 from pipeline import runfolder as rf
-from pipeline.compute import run_tasks
+from pipeline.compute import InTask, compute_here, in_task, materialize, run_tasks
 from pipeline.config import RegisterConfig
 from pipeline.errors import InputError
 from pipeline.geometry import Geometry
@@ -647,7 +647,7 @@ def _entrance_signal(profile: np.ndarray, win: _Windows) -> np.ndarray:
 
 
 def _frame_features(
-    block: np.ndarray,
+    block: np.ndarray | InTask,
     positions_um: np.ndarray,
     win: _Windows,
     n_own: int,
@@ -662,13 +662,14 @@ def _frame_features(
     Per frame: the column profile of the rows that show the plain band at the entrance (the
     mean over them, and the median: a defect in a minority of the rows does not change that),
     the number of such rows, the pairs (step, column shift, its match score, candidate row
-    shifts with their matches) and the unpadded row-feature image."""
+    shifts with their matches) and the unpadded row-feature image. ``block`` is the frames, or
+    their Dask slice wrapped by :func:`pipeline.compute.in_task` (read here, in the task)."""
     out = []
     spectra = []
     energies = []
     ent_sig = []
     shape = None
-    for img in np.asarray(block, np.float32):
+    for img in np.asarray(materialize(block), np.float32):
         img = np.where(np.isfinite(img), img, 0.0).astype(np.float32)
         level = img[:, win.lit_lo : win.lit_hi].mean(axis=1)
         lit = lit_rows(level)
@@ -827,7 +828,7 @@ def _windows(
     """Column windows from the median entrance / exit of a few frames spread over the scan."""
     n, n_rows, n_cols = (int(s) for s in corrected.shape)
     idx = np.unique(np.linspace(0, n - 1, min(n, WINDOW_SAMPLES)).round().astype(int))
-    sample = np.asarray(corrected[idx].compute(), np.float32)
+    sample = np.asarray(compute_here(corrected[idx]), np.float32)
     ents, exts = [], []
     for img in sample:
         img = np.where(np.isfinite(img), img, 0.0)
@@ -962,7 +963,7 @@ def register_frames(
         k1 = min(n, k0 + FRAMES_PER_TASK)
         k2 = min(n, k1 + cfg.neighbours)
         tasks.append(dask.delayed(_frame_features)(
-            corrected[k0:k2], pos[k0:k2], win, k1 - k0, cfg.neighbours, geom.L / geom.p_col_um,
+            in_task(corrected[k0:k2]), pos[k0:k2], win, k1 - k0, cfg.neighbours, geom.L / geom.p_col_um,
             max_lag, cfg.upsample_factor,
         ))
     feats = [f for batch in run_tasks(tasks, "register") for f in batch]

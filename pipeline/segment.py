@@ -100,7 +100,13 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
 from pipeline import omezarr
-from pipeline.compute import run_tasks, shares_memory
+from pipeline.compute import (
+    current_client,
+    fetch,
+    keep_tasks,
+    run_tasks,
+    shares_memory,
+)
 from pipeline.config import SegmentConfig
 from pipeline.errors import InputError
 from pipeline.hessian import (
@@ -799,11 +805,21 @@ def _geometry_block(block, bg_zy, bg_zx, trim_lo, trim_hi, band: float, p: _Para
     return g, g["res"][inner][g["sample"][inner] & windows_yx[None, :, :]]
 
 
-def _fields_block(g: dict, trim_lo, trim_hi, noise_sigma: float, p: _Params,
+def _second(pair: tuple[dict, np.ndarray]) -> np.ndarray:
+    return pair[1]
+
+
+def _sampled_raw(f: dict) -> dict[str, np.ndarray]:
+    """The statistics' sample of one block's raw responses (:func:`_fields_block`)."""
+    return {key: arr[f["sample"]] for key, arr in f["raw"].items()}
+
+
+def _fields_block(geo: tuple[dict, np.ndarray], trim_lo, trim_hi, noise_sigma: float, p: _Params,
                   windows_yx: np.ndarray) -> dict:
-    """Raw responses of one block from :func:`_block_geometry`, everything trimmed to the block
+    """Raw responses of one block from :func:`_geometry_block`'s result, everything trimmed to the block
     (copies, so that the halo's memory is freed while the fields wait for the statistics).
     The statistics' sample is restricted to the sample windows' columns as the noise's."""
+    g = geo[0]
     inner = _trim(trim_lo, trim_hi, g["res"].shape)
     raw = _geometry_raw(g, noise_sigma, p)
     return {"raw": {k: np.ascontiguousarray(v[inner]) for k, v in raw.items()},
@@ -1395,10 +1411,11 @@ def segment_array(
         bzx = bg_zx[zs, lo[2] - tlo[2]:hi[2] + thi[2]]
         blocks.append((index, lo, hi, tlo, thi, bzy, bzx))
     bounds = [(lo, hi) for _, lo, hi, *_ in blocks]
-    # Kept responses save the second run of the filter bank (51.6 -> 19.0 s on the demo volume)
-    # where results stay in memory; on processes or a cluster they would travel to the client
-    # and back (hundreds of MB for the demo), so there the bank runs twice.
-    keep = float(np.prod(shape)) <= KEEP_RESPONSES_MAX_VOXELS and shares_memory()
+    # Kept responses save the second run of the filter bank (51.6 -> 19.0 s on the demo volume).
+    # On the threads scheduler they stay in this process; under a distributed client on the
+    # workers that made them (only the noise and statistics samples travel to the client); on
+    # the processes scheduler, which keeps nothing between calls, the bank runs twice.
+    keep = float(np.prod(shape)) <= KEEP_RESPONSES_MAX_VOXELS and (shares_memory() or current_client() is not None)
     if keep:
         # One pass of the filter bank: the residual of every block is kept while the noise
         # level is taken, then the responses while their statistics are taken, then they are
@@ -1406,19 +1423,19 @@ def segment_array(
         # windows' columns: the same voxels and values as :func:`_statistics`.
         win_yx = _windows_yx(shape)
         wins = [win_yx[lo[1]:hi[1], lo[2]:hi[2]] for _, lo, hi, *_ in blocks]
-        geo = run_tasks([dask.delayed(_geometry_block)(delayed_blocks[index], bzy, bzx, tlo, thi,
-                                                       band, p, w)
-                         for (index, _, _, tlo, thi, bzy, bzx), w in zip(blocks, wins, strict=True)],
-                        "segment: residual")
-        noise = _noise_sigma(np.concatenate([r for _, r in geo]))
-        fields = run_tasks([dask.delayed(_fields_block)(g, b[3], b[4], noise, p, w)
-                            for (g, _), b, w in zip(geo, blocks, wins, strict=True)],
-                           "segment: responses")
+        geo = keep_tasks([dask.delayed(_geometry_block)(delayed_blocks[index], bzy, bzx, tlo, thi,
+                                                        band, p, w)
+                          for (index, _, _, tlo, thi, bzy, bzx), w in zip(blocks, wins, strict=True)],
+                         "segment: residual")
+        noise = _noise_sigma(np.concatenate(fetch(geo, _second, "segment: noise sample")))
+        fields = keep_tasks([dask.delayed(_fields_block)(g, b[3], b[4], noise, p, w)
+                             for g, b, w in zip(geo, blocks, wins, strict=True)],
+                            "segment: responses")
         del geo
         pieces: dict = {}
-        for f in fields:
-            for key, arr in f["raw"].items():
-                pieces.setdefault(key, []).append(arr[f["sample"]])
+        for sampled in fetch(fields, _sampled_raw, "segment: response sample"):
+            for key, arr in sampled.items():
+                pieces.setdefault(key, []).append(arr)
         stats = _response_stats(_Stats(band=band, noise_sigma=noise), pieces, p)
         del pieces
         tasks = [dask.delayed(_label_fields)(f, b[0], nblocks, b[1], stats, p)
