@@ -233,7 +233,8 @@ def register_case(fn: CaseFn | None = None, *, name: str | None = None):
 
 
 def figure(name: str, value: float | None, target: str, unit: str) -> Row:
-    """One bench row; ``target`` is ``"<= v"`` or ``">= v"``; passed is evaluated here."""
+    """One bench row; ``target`` is ``"<= v"`` or ``">= v"``; passed is evaluated here.
+    ``target="info"`` marks a figure shown for comparison only: it passes when it was measured."""
     op, _, ref = target.partition(" ")
     ok = value is not None and math.isfinite(value)
     if ok and op == "<=":
@@ -247,7 +248,8 @@ def figure(name: str, value: float | None, target: str, unit: str) -> Row:
 def format_row(row: Row) -> str:
     v = row["value"]
     shown = "n/a" if v is None else (f"{v:.3f}" if abs(v) < 1000 else f"{v:.0f}")
-    return f"{row['name']:<44} {shown:>10} {row['unit']:<6} target {row['target']:<8} {'pass' if row['passed'] else 'FAIL'}"
+    verdict = ("info" if row["passed"] else "FAIL") if row["target"] == "info" else ("pass" if row["passed"] else "FAIL")
+    return f"{row['name']:<44} {shown:>10} {row['unit']:<6} target {row['target']:<8} {verdict}"
 
 
 def main(

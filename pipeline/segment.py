@@ -103,7 +103,9 @@ from pipeline import omezarr
 from pipeline.compute import (
     current_client,
     fetch,
+    in_task,
     keep_tasks,
+    materialize,
     run_tasks,
     shares_memory,
 )
@@ -784,6 +786,7 @@ def _compute_chunks(shape, depth, chunks) -> tuple[tuple[int, ...], ...]:
 def _label_block(block, bg_zy, bg_zx, index, nblocks, lo_g, trim_lo, trim_hi, stats: _Stats,
                  p: _Params) -> dict:
     """Phase 1 for one block with its halo: the defect response, then :func:`_label_response`."""
+    block = materialize(block)
     inner = tuple(slice(a, n - b) for a, b, n in zip(trim_lo, trim_hi, block.shape, strict=True))
     resp, line, zone = _response_block(block, bg_zy, bg_zx, stats, p)
     return _label_response(resp[inner], index, nblocks, lo_g, p.low, p.high, line[inner],
@@ -800,6 +803,7 @@ def _geometry_block(block, bg_zy, bg_zx, trim_lo, trim_hi, band: float, p: _Para
     wafer voxels outside the edge zone in the (y, x) columns of the sample windows
     (``windows_yx``, the block's part of :func:`_windows_yx`): the noise sample, the same voxels
     and values as :func:`_window_residuals` takes, whatever the chunking."""
+    block = materialize(block)
     g = _block_geometry(block, bg_zy, bg_zx, band, p)
     inner = _trim(trim_lo, trim_hi, block.shape)
     return g, g["res"][inner][g["sample"][inner] & windows_yx[None, :, :]]
@@ -1394,12 +1398,20 @@ def segment_array(
     bg_zx = _column_background(q25, q50)
     bg = (bg_zy, bg_zx)
     cchunks = _compute_chunks(shape, p.depth, chunks or COMPUTE_CHUNKS)
-    vc = vol.rechunk(cchunks)
+    # Under a distributed client each task reads its block with the halo itself (in_task):
+    # as Dask dependencies the overlap pieces are tasks of their own whose data cross between
+    # worker processes. "tasks": the P2P rechunk such a client picks by default cannot run
+    # inside a task. On the local schedulers the shared graph reads every chunk once.
+    read_in_task = current_client() is not None
+    vc = vol.rechunk(cchunks, method="tasks") if read_in_task else vol.rechunk(cchunks)
     depth = {ax: (p.depth[ax] if len(cchunks[ax]) > 1 else 0) for ax in range(3)}
     vo = da.overlap.overlap(vc, depth=depth, boundary="none")
     nblocks = tuple(len(c) for c in cchunks)
     starts = [np.concatenate([[0], np.cumsum(c)]) for c in cchunks]
-    delayed_blocks = vo.to_delayed()
+    if read_in_task:
+        delayed_blocks = {index: in_task(vo.blocks[index]) for index in np.ndindex(*nblocks)}
+    else:
+        delayed_blocks = vo.to_delayed()
     blocks = []
     for index in np.ndindex(*nblocks):
         lo = [int(starts[a][index[a]]) for a in range(3)]

@@ -18,7 +18,7 @@ from pipeline.register import read_registration_csv
 @pytest.mark.parametrize(
     "value, target, passed",
     [(1.5, "<= 2.0", True), (2.5, "<= 2.0", False), (3.0, ">= 3", True), (None, "<= 1", False),
-     (math.nan, "<= 1", False)],
+     (math.nan, "<= 1", False), (0.9, "info", True), (None, "info", False)],
 )
 def test_figure_is_judged_against_its_target(value, target, passed):
     row = bench.figure("f", value, target, "x")
