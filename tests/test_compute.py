@@ -34,6 +34,37 @@ def test_local_cluster_same_results():
     assert compute.current_client() is None
 
 
+def _frame_sum(frames):
+    return float(compute.materialize(frames).sum())
+
+
+def _total(x):
+    return float(x.sum())
+
+
+@pytest.mark.parametrize("scheduler", ["threads", "processes", "local-cluster"])
+def test_in_task_pieces_and_kept_results_give_the_values_of_plain_compute(scheduler):
+    import dask.array as da
+    import numpy as np
+
+    x = da.from_array(np.arange(6 * 8 * 10, dtype="float32").reshape(6, 8, 10), chunks=(2, 4, 5)) * 0.5
+    pieces = [x[k : k + 3, 1:7] for k in range(0, 6, 3)]
+    wrapped = [compute.in_task(p) for p in pieces]
+    # the wrapper is a plain argument: the task computes it; its graph is culled to the piece
+    assert [w.shape for w in wrapped] == [(3, 6, 10)] * 2
+    assert all(np.array_equal(compute.materialize(w), p.compute()) for w, p in zip(wrapped, pieces, strict=True))
+    assert dask.base.tokenize(wrapped[0]) == dask.base.tokenize(compute.in_task(pieces[0]))
+    cfg = ComputeConfig(scheduler=scheduler, workers=2, memory_limit="1GiB")
+    with compute.use_scheduler(cfg):
+        sums = compute.run_tasks([dask.delayed(_frame_sum)(w) for w in wrapped], "in task")
+        kept = compute.keep_tasks([dask.delayed(np.multiply)(w.compute(), 2.0) for w in wrapped], "kept")
+        if scheduler == "local-cluster":  # futures on the workers, not values
+            assert all(type(k).__name__ == "Future" for k in kept)
+        again = compute.fetch(kept, _total, "fetch")
+    assert sums == [float(p.sum().compute()) for p in pieces]
+    assert again == [2.0 * v for v in sums]
+
+
 def _fails(i):
     if i == 3:
         raise ValueError("bad block 3")
