@@ -97,8 +97,8 @@ class _FrameSource:
 
     Held by a slab task as a plain object (not a Dask dependency), so the task reads frames
     sequentially and holds one batch at a time instead of the scheduler materialising all of
-    them. The task graph of the task's frames is built once (:meth:`prepare`), culled to those
-    frames, and each batch runs the part of it that makes the batch with Dask's simplest
+    them. It holds the task graph of the task's frames only (:meth:`for_tasks` culls the
+    series' graph per task on the client), and each batch runs the part of it that makes the batch with Dask's simplest
     in-thread executor, ``dask.core.get`` (no nested thread pools: every core's work stays in
     its own task). Slicing the Dask array per batch instead cost ~5 ms of Python per
     2048 x 1024 frame, as much as reading and correcting the frame, and held the GIL the other
@@ -110,9 +110,12 @@ class _FrameSource:
     its frames once.
     """
 
-    def __init__(self, frames: da.Array, c_lo: int, c_hi: int):
-        self.frames = frames[:, :, c_lo:c_hi]
-        self._graph: dict | None = None
+    def __init__(self, graph: dict, keys: list, starts: np.ndarray, col_chunks: tuple[int, ...], token: str):
+        self._graph = graph  # the task graph of this source's frames only
+        self._keys = keys  # [frame block][row block][column block]
+        self._starts = starts  # series index of each frame block's first frame, and the end
+        self._col_chunks = col_chunks
+        self._token = token
         self._kept: dict[int, list[np.ndarray]] = {}
         self._retain: set[int] = set()
         self._buffers: dict[str, np.ndarray] = {}
@@ -123,11 +126,34 @@ class _FrameSource:
         self.publish: set[int] = set()
         self.collect: set[int] = set()
 
+    @classmethod
+    def for_tasks(cls, frames: da.Array, c_lo: int, c_hi: int, ranges: list[tuple[int, int]]) -> list[_FrameSource]:
+        """One source per frame range ``[k_lo, k_hi)`` of ``frames`` (band columns
+        ``c_lo:c_hi``), each holding the task graph of its own frames only.
+
+        Materialising the series' graph once and culling it per range keeps what a task
+        pickles proportional to its frames: with the whole series' graph in every task
+        (~2 KB per frame), a 2000-frame series on 64 workers would ship ~4 MB to each of 128
+        tasks and serialise them one after the other on the client."""
+        band = frames[:, :, c_lo:c_hi]
+        graph = dict(band.__dask_graph__())
+        keys = band.__dask_keys__()
+        starts = np.cumsum((0,) + tuple(int(c) for c in band.chunks[0]))
+        out = []
+        for k_lo, k_hi in ranges:
+            b_lo = int(np.searchsorted(starts, k_lo, side="right")) - 1
+            b_hi = int(np.searchsorted(starts, k_hi - 1, side="right"))
+            part = keys[b_lo:b_hi]
+            sub, _ = cull(graph, [key for block in part for row in block for key in row])
+            out.append(cls(sub, part, starts[b_lo : b_hi + 1], tuple(int(c) for c in band.chunks[2]),
+                           f"{band.name}-{k_lo}-{k_hi}"))
+        return out
+
     def __dask_tokenize__(self):
-        return (self.frames.name,)
+        return (self._token,)
 
     def __getstate__(self) -> dict:
-        return {**self.__dict__, "_graph": None, "_kept": {}, "_buffers": {}}  # rebuilt where the task runs
+        return {**self.__dict__, "_kept": {}, "_buffers": {}}  # rebuilt where the task runs
 
     def buffer(self, name: str, shape: tuple[int, ...]) -> np.ndarray:
         """A float32 work array reused by the task's slabs (uninitialised). Allocating the
@@ -139,18 +165,6 @@ class _FrameSource:
             self._buffers[name] = buf = np.empty(n, np.float32)
         return buf[:n].reshape(shape)
 
-    def prepare(self, frame_ids: np.ndarray) -> None:
-        """Build the task graph of the frames ``frame_ids`` (all the task's slabs) once."""
-        k_lo, k_hi = int(frame_ids.min()), int(frame_ids.max()) + 1
-        part = self.frames[k_lo:k_hi]
-        keys = part.__dask_keys__()  # [frame block][row block][column block]
-        wanted = {key for block in keys for row in block for key in row}
-        # Culling the high-level graph of the whole series is ~40 ms of Python: once per task.
-        self._graph = dict(part.__dask_graph__().cull(wanted))
-        self._keys = keys
-        self._k_lo = k_lo
-        self._starts = np.cumsum((0,) + tuple(part.chunks[0]))
-
     def select(self, frame_ids: np.ndarray, next_ids: np.ndarray | None) -> None:
         """Start a slab reading ``frame_ids``; keep those also in ``next_ids``."""
         here = {int(k) for k in frame_ids}
@@ -158,8 +172,7 @@ class _FrameSource:
         self._retain = set() if next_ids is None else {int(k) for k in next_ids}
 
     def release(self) -> None:
-        """Drop the materialised graph and the kept frames (the task is done)."""
-        self._graph = None
+        """Drop the kept frames and work arrays (the task is done)."""
         self._kept = {}
         self._buffers = {}
 
@@ -204,22 +217,23 @@ class _FrameSource:
         except (FileNotFoundError, ValueError, OSError):
             return None
         path.unlink(missing_ok=True)
-        edges = np.cumsum(self.frames.chunks[2])[:-1]
+        edges = np.cumsum(self._col_chunks)[:-1]
         return np.split(band, edges, axis=1)
 
     def _compute(self, ks: list[int]) -> dict[int, list[np.ndarray]]:
-        local = sorted({k - self._k_lo for k in ks})
-        blocks = sorted({int(np.searchsorted(self._starts, i, side="right")) - 1 for i in local})
+        blocks = sorted({int(np.searchsorted(self._starts, k, side="right")) - 1 for k in ks})
         want = [key for b in blocks for row in self._keys[b] for key in row]
         graph, _ = cull(self._graph, want)
         values = dict(zip(want, dask.core.get(graph, want), strict=True))
+        wanted = set(ks)
         out: dict[int, list[np.ndarray]] = {}
         for b in blocks:
             grid = [[values[key] for key in row] for row in self._keys[b]]  # [row block][column block]
             columns = [col[0] if len(col) == 1 else np.concatenate(col, axis=1) for col in zip(*grid, strict=True)]
             for i in range(columns[0].shape[0]):
-                if self._starts[b] + i in local:
-                    out[int(self._starts[b] + i) + self._k_lo] = [np.asarray(c[i], np.float32) for c in columns]
+                k = int(self._starts[b]) + i
+                if k in wanted:
+                    out[k] = [np.asarray(c[i], np.float32) for c in columns]
         return out
 
 
@@ -421,7 +435,6 @@ def _run_slabs(source: _FrameSource, arrays: list[zarr.Array], slabs: list[dict[
     """One task: slabs ``slabs`` (consecutive in x, each ``index, x_slice, marker, kwargs``) in
     order, sharing the frames where they overlap."""
     done = []
-    source.prepare(np.concatenate([slab["kwargs"]["frame_ids"] for slab in slabs]))
     for j, slab in enumerate(slabs):
         following = slabs[j + 1]["kwargs"]["frame_ids"] if j + 1 < len(slabs) else None
         source.select(slab["kwargs"]["frame_ids"], following)
@@ -688,7 +701,6 @@ def reconstruct_volume(
     tasks, plans = [], []
     handoff = progress / "handoff"
     for run in _split_runs(todo, widths, n_runs) if todo else []:
-        source = _FrameSource(corrected, c_lo, c_hi)  # one per task: it holds the task's state
         slabs = []
         for i in run:
             a, b = i * chunks[2], min(nx, (i + 1) * chunks[2])
@@ -706,7 +718,12 @@ def reconstruct_volume(
                 c_lo=c_lo, n_band_cols=c_hi - c_lo, n_rows=n_rows, max_gap_um=max_gap,
             )
             slabs.append({"index": i, "x_slice": (a, b), "marker": progress / f"slab_{i:05d}.done", "kwargs": kwargs})
-        plans.append((run, source, slabs))
+        plans.append((run, slabs))
+    # one source per task (it holds the task's state), with the graph of the task's frames only
+    ranges = [(int(min(s["kwargs"]["frame_ids"].min() for s in slabs)),
+               int(max(s["kwargs"]["frame_ids"].max() for s in slabs)) + 1) for _, slabs in plans]
+    sources = _FrameSource.for_tasks(corrected, c_lo, c_hi, ranges) if plans else []
+    plans = [(run, src, slabs) for (run, slabs), src in zip(plans, sources, strict=True)]
     for (run_a, src_a, slabs_a), (run_b, src_b, slabs_b) in zip(plans, plans[1:], strict=False):
         if run_b[0] == run_a[-1] + 1:  # neighbours in x: they share the frames of the shear
             shared = {int(k) for k in slabs_a[-1]["kwargs"]["frame_ids"]} & {
