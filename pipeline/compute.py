@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import contextlib
 import logging
+import math
 import re
 import sys
 import tempfile
@@ -293,11 +294,11 @@ def n_workers() -> int:
 class _Progress:
     """Rich bar on a terminal, plain log lines otherwise."""
 
-    def __init__(self, desc: str, total: int):
+    def __init__(self, desc: str, total: int, *, show: bool = True):
         self.desc, self.total, self.done, self.t0 = desc, total, 0, time.monotonic()
-        self._next_log = 0.1
+        self._next_log = 0.1 if show else math.inf
         self._bar = None
-        if not _state["quiet"] and sys.stderr.isatty():
+        if show and not _state["quiet"] and sys.stderr.isatty():
             from rich.progress import (
                 BarColumn,
                 MofNCompleteColumn,
@@ -383,7 +384,7 @@ def fetch(kept: Sequence[Any], fn, desc: str) -> list[Any]:
     client = _state["client"]
     if client is None:
         return [fn(v) for v in kept]
-    bar = _Progress(desc, len(kept))
+    bar = _Progress(desc, len(kept), show=False)  # small and quick: no bar of its own
     try:
         return _wait([client.submit(fn, f, retries=2) for f in kept], desc, bar, gather=True)
     finally:
