@@ -213,8 +213,12 @@ def _process_pool(workers: int | None) -> Iterator[Any]:
     # As dask does for its own pools: a fixed hash seed so hashing agrees across processes.
     if os.environ.get("PYTHONHASHSEED") in (None, "0"):
         os.environ["PYTHONHASHSEED"] = "6640"
-    pool = ProcessPoolExecutor(workers or os.cpu_count() or 1, mp_context=get_context(),
-                               initializer=_init_pool_process)
+    n = workers or os.cpu_count() or 1
+    pool = ProcessPoolExecutor(n, mp_context=get_context(), initializer=_init_pool_process)
+    # Start every process now (one short task each, submitted together: the pool spawns a
+    # process per task while none is idle), so that their start and imports (~1-2 s) are paid
+    # here, not inside the first stage's tasks and its recorded time.
+    list(pool.map(time.sleep, [0.05] * n))
     try:
         yield pool
     finally:
