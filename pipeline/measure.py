@@ -23,7 +23,11 @@ measured from its contrast instead:
    object's and keeps its mean, so the crack's own second moments are the mass's less the
    point-spread's. Plane normal: the least-variance axis; where the smear lies in the plane
    (vertical cracks with the normal along y), the labels' plane is unbiased too and is averaged
-   in by inverse variance.
+   in by inverse variance. Shallow surface cracks (extent down the dip within a few slit
+   widths, :data:`FORWARD_DIP_MAX_SLITS`), where subtracting the point-spread's covariance
+   amplifies the noise, get their plane from a forward model instead
+   (:func:`_crack_forward_normal`): their patch smeared by the point-spread, fitted to the
+   mass voxels by least squares from the moments' plane.
 3. Kind and shape from the labels (which boundaries they touch, steps 2-4 below). Depth and
    length (:func:`_crack_from_mass`) from the moments of a uniform patch: a semi-ellipse of
    depth a has its mean distance from the boundary at 4 a / (3 pi), and variance c^2 / 4 along
@@ -111,6 +115,7 @@ import dask
 import numpy as np
 from scipy import ndimage as ndi
 from scipy.optimize import least_squares
+from scipy.special import ndtr
 from skimage.measure import CircleModel, EllipseModel, LineModelND, find_contours, ransac
 
 from pipeline import omezarr
@@ -560,6 +565,8 @@ MIN_MASS_SNR = 10.0
 #: below this (3 deg); the labels' normal is then unbiased and joins the mass's
 #: (inverse-variance weights).
 SMEAR_IN_PLANE = math.sin(math.radians(3.0))
+#: Fit the forward model (:func:`_crack_forward_normal`) to shallow surface cracks.
+FORWARD_FIT = True
 #: Least one-sigma given to the labels' plane normal in that average, deg (the voxel lattice).
 LABEL_TILT_FLOOR_DEG = 0.3
 #: Room around a defect's smear from which its background is taken, um.
@@ -1191,6 +1198,7 @@ def measure_crack_points(
     )
     sig_i = _robust_sd(incl_b)
     psf_cov = np.zeros((3, 3)) if point_spread is None else np.asarray(point_spread.cov_um2, float)
+    fwd_used = False
     if mass is not None and len(mass.excess) >= MIN_VOXELS and mass.snr >= MIN_MASS_SNR:
         try:
             mg = _crack_from_mass(mass.points_um, mass.excess, psf_cov, ctx, reach_um)
@@ -1201,6 +1209,27 @@ def measure_crack_points(
             sd_d, sd_l, sd_i = _crack_mass_bootstrap(
                 mass.points_um, mass.excess, psf_cov, ctx, reach_um, bootstrap, rng
             )
+            if (
+                FORWARD_FIT
+                and point_spread is not None
+                and kind in ("surface_top", "surface_bottom")
+                and mg["dip_um"] <= FORWARD_DIP_MAX_SLITS * point_spread.slit_half_um
+            ):
+                fwd = _crack_forward_normal(
+                    mass.points_um, mass.excess, point_spread, ctx, reach_um, mg["normal"]
+                )
+                if fwd is not None:
+                    log.debug(
+                        "measure: forward model inclination %.2f +- %.2f deg (moments %.2f)",
+                        plane_angles_deg(fwd[0])[0],
+                        fwd[1],
+                        plane_angles_deg(mg["normal"])[0],
+                    )
+                    n_f = fwd[0]
+                    mg_f = _crack_from_mass(mass.points_um, mass.excess, psf_cov, ctx, reach_um, n_f)
+                    mg = mg_f or mg
+                    sd_i = fwd[1]
+                    fwd_used = True
             smear = None if point_spread is None else np.asarray(point_spread.direction, float)
             n_l = n if float(n @ mg["normal"]) >= 0 else -n
             apart = math.degrees(math.acos(min(1.0, float(n_l @ mg["normal"]))))
@@ -1242,6 +1271,12 @@ def measure_crack_points(
                 f"{MODEL_SIGMA_TILT_UM} um tilt over the crack's extent down the dip; "
                 f"{MASS_NOISE_UM:g} um / snr on depth and length, snr {mass.snr:.0f})"
             )
+            if fwd_used:
+                method += (
+                    "; plane from a forward model (the semi-elliptical patch, its sheet width "
+                    "fitted, smeared by the point-spread; least squares on the mass voxels), its "
+                    "inclination's one-sigma from the fit covariance plus the same tilt model error"
+                )
     front = {
         "a_um": g["a"],
         "c_um": g["c"],
@@ -1294,13 +1329,16 @@ class PointSpread:
 
     ``direction`` (unit, x y z) is the direction along which a point is smeared (the diffracted
     beam), ``half_length_um`` the half-length of the smear along it (its support), ``cov_um2``
-    the 3 x 3 covariance (x, y, z, um^2) of the smear. A zero spread (``PointSpread.none()``)
+    the 3 x 3 covariance (x, y, z, um^2) of the smear, ``slit_half_um`` the half-length (um,
+    along ``direction``) of its top-hat part (the slit's width; the rest of ``cov_um2`` is
+    Gaussian: slit edges, interpolation, detector). A zero spread (``PointSpread.none()``)
     stands for a volume without slit blur (invented labels).
     """
 
     direction: np.ndarray
     half_length_um: float
     cov_um2: np.ndarray
+    slit_half_um: float = 0.0
 
     @classmethod
     def none(cls) -> PointSpread:
@@ -1354,7 +1392,7 @@ def volume_point_spread(
     dz_col = geom.p_col_um / abs(geom.G)
     pix2 = 1.0 / 12.0 + 1.0 / 6.0 + float(detector_blur_px) ** 2
     cov += np.diag([0.0, geom.p_row_um**2, dz_col**2]) * pix2
-    return PointSpread(direction, (0.5 * w_x + abs(step_um)) * norm, cov)
+    return PointSpread(direction, (0.5 * w_x + abs(step_um)) * norm, cov, 0.5 * w_x * norm)
 
 
 def _segment_structure(psf: PointSpread, vx: np.ndarray) -> np.ndarray:
@@ -1560,6 +1598,7 @@ def _crack_from_mass(
         return _unit(v) if np.linalg.norm(v) > 1e-9 else e_v
 
     span = [0.0, t]
+    patch = None
     if shape == "semi_elliptical":
         prim = "edge" if ctx.kind == "edge" else ("top" if ctx.kind == "surface_top" else "bottom")
         m = ctx.bnds[prim].m
@@ -1573,6 +1612,9 @@ def _crack_from_mass(
         front = base + 0.5 * length * np.cos(th) * e_c + (depth / g) * np.sin(th) * e_a
         a_fit, c_fit = depth, 0.5 * length
         dip = depth / g
+        # the uniform patch of the same moments (the contrast's reach not taken off): base on
+        # the boundary, half-axes along the mouth and down the dip (for the forward model)
+        patch = (base, (0.5 * length + reach_um) * e_c, ((depth + reach_um) / g) * e_a)
         if ctx.kind == "surface_top":
             span = [0.0, min(t, depth)]
         elif ctx.kind == "surface_bottom":
@@ -1628,6 +1670,7 @@ def _crack_from_mass(
         "a": a_fit,
         "c": c_fit,
         "dip_um": max(float(dip), 1e-6),
+        "patch": patch,
     }
 
 
@@ -1655,6 +1698,170 @@ def _crack_mass_bootstrap(
         l_b.append(r["length"])
         i_b.append(plane_angles_deg(r["normal"])[0])
     return _robust_sd(d_b), _robust_sd(l_b), _robust_sd(i_b)
+
+
+# ---------------------------------------------------------------------------------------------
+# Forward model of a shallow crack: its patch smeared by the point-spread, fitted to the mass
+
+#: Start value of the Gaussian half-width of a crack's own contrast about its sheet and front in
+#: the forward model (:func:`_crack_forward_normal`), um: the forward model's crack contrast
+#: (core 1.5 exp(-r^2 / 2 (1.2 um)^2) + halo 0.3 exp(-r / 4 um),
+#: synthetic.scenario.FeatureContrast) has its half maximum at r = 1.9 um.
+SHEET_SIGMA_UM = 2.0
+#: Range of that half-width, um. It is fitted: where the smear runs nearly within the plane
+#: (vertical cracks, smear 10.6 deg off z), a wrong fixed width is taken up by a tilt of the
+#: plane (measured on the 20 um deep vertical crack of tests/test_measure_psf.py, 1.5 um core:
+#: width held at 2.0 um, -3.7 deg; fitted, 1.45 um and 0.0 deg).
+SHEET_SIGMA_BOUNDS_UM = (1.0, 8.0)
+#: The forward model replaces the moments' plane for semi-elliptical surface cracks whose
+#: extent down the dip is at most this many slit half-lengths (the smear's top hat): there the
+#: point-spread's covariance is a large part of the mass's across the plane and taking it out
+#: amplifies the noise; for longer dips the moments are as good and cost nothing.
+FORWARD_DIP_MAX_SLITS = 4.0
+#: Patch samples per smallest Gaussian half-width of the model's kernel, inverse (a spacing of
+#: 1.5 sigma leaves a ripple of exp(-2 pi^2 / 1.5^2) ~ 1e-4 of the smeared sheet).
+_PATCH_SPACING_SIGMAS = 1.5
+
+
+def _unit_half_disk(n_u: int, n_v: int) -> tuple[np.ndarray, np.ndarray]:
+    """Cell centres (s, t) of an ``n_u`` x ``n_v`` grid on [-1, 1] x [0, 1] that lie inside the
+    unit half-disk (equal areas: the patch's samples in its own axes)."""
+    s = (np.arange(n_u) + 0.5) / n_u * 2.0 - 1.0
+    t = (np.arange(n_v) + 0.5) / n_v
+    ss, tt = np.meshgrid(s, t, indexing="ij")
+    keep = ss**2 + tt**2 <= 1.0
+    return ss[keep], tt[keep]
+
+
+def _smeared_points(
+    q: np.ndarray, pts: np.ndarray, direction: np.ndarray, slit_half_um: float, prec: np.ndarray
+) -> np.ndarray:
+    """Sum over ``pts`` of the point-spread at ``q`` (unnormalised): a segment of half-length
+    ``slit_half_um`` along ``direction`` (the slit's top hat) convolved with a Gaussian of
+    precision ``prec`` (um^-2). The segment integral of a Gaussian is a difference of normal
+    cumulative distributions: with ``r`` the offset, ``(r - s d)^T P (r - s d)`` is quadratic
+    in ``s`` (a = d P d, b = d P r, c = r P r), so the integral over ``|s| <= h`` is
+    ``exp(-(c - b^2 / a) / 2) (Phi((h - b / a) sqrt a) - Phi((-h - b / a) sqrt a))`` up to a
+    constant."""
+    # expanded as (r = q - p): c = qPq - 2 qPp + pPp and b = q.Pd - p.Pd, so the pairs cost one
+    # matrix product instead of an (N, M, 3) array
+    o = q.mean(axis=0)  # about a near origin: no cancellation in the expanded c
+    q, pts = q - o, pts - o
+    pd = prec @ direction
+    alpha = float(direction @ pd)
+    sa = math.sqrt(alpha)
+    qp = q @ prec
+    qq = np.einsum("ni,ni->n", qp, q)
+    pp = np.einsum("mi,ij,mj->m", pts, prec, pts)
+    qd, pdd = q @ pd, pts @ pd
+    out = np.empty(len(q))
+    step = max(1, 1_000_000 // max(len(pts), 1))
+    for i in range(0, len(q), step):
+        sl = slice(i, i + step)
+        beta = qd[sl, None] - pdd[None, :]
+        gamma = qq[sl, None] - 2.0 * (qp[sl] @ pts.T) + pp[None, :]
+        s0 = beta / alpha
+        w = np.exp(-0.5 * np.maximum(gamma - beta * s0, 0.0))
+        near = w > 1e-12  # the cumulative distributions only where the Gaussian is not 0
+        s0 = s0[near]
+        w[near] *= ndtr((slit_half_um - s0) * sa) - ndtr((-slit_half_um - s0) * sa)
+        out[sl] = w.sum(axis=1)
+    return out
+
+
+def _crack_forward_normal(
+    q: np.ndarray,
+    e: np.ndarray,
+    psf: PointSpread,
+    ctx: _CrackCtx,
+    reach_um: float,
+    n0: np.ndarray,
+) -> tuple[np.ndarray, float] | None:
+    """Plane normal (unit) and its inclination's one-sigma (deg) of a semi-elliptical crack
+    from a forward model of its contrast mass; None where the model does not apply.
+
+    The model is the uniform patch of :func:`_crack_from_mass` (base on the boundary, the
+    moments' depth and length plus the contrast's reach, for the trial normal), its two
+    semi-axes scaled by free factors, blurred by a Gaussian sheet width (free, start
+    :data:`SHEET_SIGMA_UM`) and smeared by the volume's point-spread (its top hat along the
+    diffracted beam and its Gaussian rest, :func:`_smeared_points`), times an amplitude plus a
+    constant (both linear, solved at every step). Least squares over the mass voxels
+    (:func:`scipy.optimize.least_squares`) of the normal's two tilts, the patch's offset along
+    the normal, the two scales and the sheet width, from the moments' normal ``n0``. Unlike
+    the moments this weights each voxel by its signal, not by its squared distance from the
+    centroid, and needs no complete mass. The one-sigma is the fit's covariance (residual
+    variance times (J^T J)^-1) along the tilt that changes the inclination; it sees the noise
+    only, not the model's error (the caller adds ``MODEL_SIGMA_TILT_UM``).
+    """
+    h = float(psf.slit_half_um)
+    if h <= 0 or len(e) < 20:
+        return None
+    cov = np.asarray(psf.cov_um2, float)
+    mg0 = _crack_from_mass(q, e, cov, ctx, reach_um, normal=n0)
+    if mg0 is None or mg0["patch"] is None:
+        return None
+    d = np.asarray(psf.direction, float)
+    rest = cov - (h * h / 3.0) * np.outer(d, d)  # the point-spread's Gaussian part
+    lo_sheet, hi_sheet = SHEET_SIGMA_BOUNDS_UM
+    sig_min = math.sqrt(max(float(np.linalg.eigvalsh(rest).min()), 0.0) + lo_sheet**2)
+    _, u0, v0 = mg0["patch"]
+    spacing = _PATCH_SPACING_SIGMAS * sig_min
+    n_u = max(3, int(math.ceil(2.0 * float(np.linalg.norm(u0)) / spacing)))
+    n_v = max(2, int(math.ceil(float(np.linalg.norm(v0)) / spacing)))
+    ss, tt = _unit_half_disk(min(n_u, 80), min(n_v, 60))
+    n0 = _orient(_unit(n0))
+    t1, t2 = _in_plane_axes(n0)
+    ones = np.ones(len(e))
+
+    def normal_of(x: np.ndarray) -> np.ndarray:
+        return _orient(_unit(n0 + x[0] * t1 + x[1] * t2))
+
+    def resid(x: np.ndarray) -> np.ndarray:
+        n = normal_of(x)
+        mg = _crack_from_mass(q, e, cov, ctx, reach_um, normal=n)
+        base, u, v = mg["patch"]
+        pts = base + x[2] * n + ss[:, None] * (math.exp(x[3]) * u) + tt[:, None] * (
+            math.exp(x[4]) * v
+        )
+        prec = np.linalg.inv(rest + x[5] ** 2 * np.eye(3))
+        a = np.column_stack([_smeared_points(q, pts, d, h, prec), ones])
+        coef, *_ = np.linalg.lstsq(a, e, rcond=None)
+        return a @ coef - e
+
+    try:
+        sol = least_squares(
+            resid,
+            np.array([0.0, 0.0, 0.0, 0.0, 0.0, SHEET_SIGMA_UM]),
+            bounds=(
+                [-0.6, -0.6, -20.0, -1.0, -1.0, lo_sheet],
+                [0.6, 0.6, 20.0, 1.0, 1.0, hi_sheet],
+            ),
+            x_scale=np.array([0.02, 0.02, 1.0, 0.05, 0.05, 0.5]),
+            diff_step=1e-3,
+            max_nfev=80,
+            ftol=1e-6,
+            xtol=1e-4,
+        )
+    except (ValueError, np.linalg.LinAlgError) as exc:
+        log.debug("measure: forward model not fitted (%s)", exc)
+        return None
+    if not np.all(np.isfinite(sol.x)) or max(abs(sol.x[0]), abs(sol.x[1])) >= 0.6 - 1e-6:
+        return None  # stopped at the bound: no minimum near the moments' plane
+    n = normal_of(sol.x)
+    jac = np.asarray(sol.jac, float)
+    dof = max(len(e) - 8, 1)
+    s2 = float(np.sum(sol.fun**2)) / dof
+    try:
+        cov_x = s2 * np.linalg.pinv(jac.T @ jac)
+    except np.linalg.LinAlgError:
+        return None
+    tz = EZ - float(EZ @ n) * n
+    if np.linalg.norm(tz) < 1e-9:
+        return None
+    tz = _unit(tz)
+    g = np.array([float(t1 @ tz), float(t2 @ tz), 0.0, 0.0, 0.0, 0.0])
+    sd = math.degrees(math.sqrt(max(float(g @ cov_x @ g), 0.0)))
+    return n, sd
 
 
 # ---------------------------------------------------------------------------------------------
