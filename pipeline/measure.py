@@ -1721,6 +1721,12 @@ FORWARD_DIP_MAX_SLITS = 4.0
 #: Patch samples per smallest Gaussian half-width of the model's kernel, inverse (a spacing of
 #: 1.5 sigma leaves a ripple of exp(-2 pi^2 / 1.5^2) ~ 1e-4 of the smeared sheet).
 _PATCH_SPACING_SIGMAS = 1.5
+#: Most mass voxels and patch samples the fit evaluates (the kernel sum costs voxels x samples
+#: per residual; on the small bench run's 0.8 um voxels, with every voxel and sample, one crack
+#: took ~200 s). Above it, a fixed-seed random subset of the voxels (the fit's covariance
+#: scaled back to all of them) and a coarser patch.
+FORWARD_MAX_VOXELS = 1200
+FORWARD_MAX_PATCH = 300
 
 
 def _unit_half_disk(n_u: int, n_v: int) -> tuple[np.ndarray, np.ndarray]:
@@ -1808,10 +1814,17 @@ def _crack_forward_normal(
     spacing = _PATCH_SPACING_SIGMAS * sig_min
     n_u = max(3, int(math.ceil(2.0 * float(np.linalg.norm(u0)) / spacing)))
     n_v = max(2, int(math.ceil(float(np.linalg.norm(v0)) / spacing)))
-    ss, tt = _unit_half_disk(min(n_u, 80), min(n_v, 60))
+    shrink = math.sqrt(min(1.0, 2.0 * FORWARD_MAX_PATCH / (n_u * n_v)))  # a half disk: ~n_u n_v / 2
+    ss, tt = _unit_half_disk(max(3, int(math.ceil(n_u * shrink))), max(2, int(math.ceil(n_v * shrink))))
+    n_all = len(e)
+    if n_all > FORWARD_MAX_VOXELS:
+        pick = np.sort(np.random.default_rng(0).choice(n_all, FORWARD_MAX_VOXELS, replace=False))
+        q_fit, e_fit = q[pick], e[pick]
+    else:
+        q_fit, e_fit = q, e
     n0 = _orient(_unit(n0))
     t1, t2 = _in_plane_axes(n0)
-    ones = np.ones(len(e))
+    ones = np.ones(len(e_fit))
 
     def normal_of(x: np.ndarray) -> np.ndarray:
         return _orient(_unit(n0 + x[0] * t1 + x[1] * t2))
@@ -1824,9 +1837,9 @@ def _crack_forward_normal(
             math.exp(x[4]) * v
         )
         prec = np.linalg.inv(rest + x[5] ** 2 * np.eye(3))
-        a = np.column_stack([_smeared_points(q, pts, d, h, prec), ones])
-        coef, *_ = np.linalg.lstsq(a, e, rcond=None)
-        return a @ coef - e
+        a = np.column_stack([_smeared_points(q_fit, pts, d, h, prec), ones])
+        coef, *_ = np.linalg.lstsq(a, e_fit, rcond=None)
+        return a @ coef - e_fit
 
     try:
         sol = least_squares(
@@ -1849,10 +1862,11 @@ def _crack_forward_normal(
         return None  # stopped at the bound: no minimum near the moments' plane
     n = normal_of(sol.x)
     jac = np.asarray(sol.jac, float)
-    dof = max(len(e) - 8, 1)
+    dof = max(len(e_fit) - 8, 1)
     s2 = float(np.sum(sol.fun**2)) / dof
     try:
-        cov_x = s2 * np.linalg.pinv(jac.T @ jac)
+        # scaled from the subset to all the voxels (J^T J grows with their number)
+        cov_x = s2 * np.linalg.pinv(jac.T @ jac) * (len(e_fit) / n_all)
     except np.linalg.LinAlgError:
         return None
     tz = EZ - float(EZ @ n) * n
