@@ -122,7 +122,7 @@ from pipeline import omezarr
 from pipeline import runfolder as rf
 from pipeline.compute import InTask, in_task, materialize, run_tasks
 from pipeline.config import Acquisition, MeasureConfig
-from pipeline.crystal import nearest_plane
+from pipeline.crystal import canonical_normal, nearest_plane
 from pipeline.crystal import plane_angles as plane_angles_deg
 from pipeline.errors import InputError
 from pipeline.geometry import Geometry
@@ -369,11 +369,9 @@ class PlaneFit:
 
 
 def _orient(n: np.ndarray) -> np.ndarray:
-    """Sign convention for unoriented plane normals: n_z > 0, else n_y > 0, else n_x > 0."""
-    for i in (2, 1, 0):
-        if abs(n[i]) > 1e-9:
-            return n if n[i] > 0 else -n
-    return n
+    """Sign convention for unoriented plane normals, the one the synthetic truth and the export
+    use (:func:`pipeline.crystal.canonical_normal`): n_z > 0, else n_x > 0, else n_y > 0."""
+    return canonical_normal(n)
 
 
 def fit_plane(

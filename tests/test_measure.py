@@ -25,7 +25,7 @@ from scipy.spatial import cKDTree
 from pipeline import measure, omezarr
 from pipeline import runfolder as rf
 from pipeline.config import Acquisition, MeasureConfig
-from pipeline.crystal import angle_between_planes_deg, crystal_to_wafer
+from pipeline.crystal import angle_between_planes_deg, canonical_normal, crystal_to_wafer
 from pipeline.errors import InputError
 from pipeline.measure import WaferEdge
 
@@ -226,6 +226,11 @@ def test_semi_elliptical_surface_crack(voxel, az, incl, a, c, k, side):
     assert r["front"]["aspect"] == pytest.approx(r["front"]["a_um"] / r["front"]["c_um"])
     assert abs(r["plane"]["inclination_deg"] - incl) <= 2.0
     assert az_err(r["plane"]["azimuth_deg"], az) <= 2.0
+    # the exported normal carries the sign convention of the synthetic truth (n_z > 0, ...)
+    got = np.asarray(r["plane"]["normal"])
+    assert np.allclose(got, canonical_normal(got))
+    if abs(n[2]) > 0.1:  # near-vertical planes: the sign follows the fitted n_z's
+        assert float(got @ canonical_normal(n)) >= math.cos(math.radians(2.0))
     span = r["thickness_span_um"]
     if side == "top":
         assert span[0] == 0.0 and abs(span[1] - a) <= voxel[0]
