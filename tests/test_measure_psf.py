@@ -132,23 +132,21 @@ def test_point_spread_runs_along_the_diffracted_beam_over_the_slit():
     assert measure.PointSpread.none().half_length_um == 0.0
 
 
-@pytest.mark.parametrize(
-    "normal, depth_um, length_um",
-    [
-        ((0.0, -math.sqrt(2.0 / 3.0), math.sqrt(1.0 / 3.0)), 40.0, 70.0),  # inclined (1-11)
-        ((1.0, 0.0, 0.0), 30.0, 60.0),  # vertical, normal in the scattering plane
-    ],
-)
-def test_forward_modelled_surface_crack_through_the_point_spread(normal, depth_um, length_um):
-    geom = _geometry(12.0)
+def _crack_axes(normal) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Unit normal, the surface trace e_u and the direction down the dip e_v of a crack plane."""
     n = np.asarray(normal, float)
     e_u = np.cross(n, [0.0, 0.0, 1.0])
     e_u /= np.linalg.norm(e_u)
     e_v = np.cross(e_u, n)
-    if e_v[2] < 0:
-        e_v = -e_v
-    a_in = depth_um / e_v[2]  # semi-axis down the dip
-    c = length_um / 2.0
+    return n, e_u, (-e_v if e_v[2] < 0 else e_v)
+
+
+def _shallow_crack(normal, depth_um: float, length_um: float, noise: float, seed: int):
+    """A semi-elliptical surface crack's contrast (core ``CORE_UM``) through the point-spread,
+    with Gaussian noise; returns the measured points, contrast mass and point-spread."""
+    geom = _geometry(12.0)
+    n, e_u, e_v = _crack_axes(normal)
+    a_in, c = depth_um / e_v[2], length_um / 2.0  # semi-axis down the dip, half-length
 
     def contrast(q):
         u, v, w = q @ e_u, q @ e_v, q @ n
@@ -161,10 +159,21 @@ def test_forward_modelled_surface_crack_through_the_point_spread(normal, depth_u
     reach_y = abs(e_v[1]) * a_in + 40.0
     p, origin = _grid((-half, -reach_y, -40.0), (half, reach_y, depth_um + 45.0))
     vol = _smeared(contrast, p, geom)
-    rng = np.random.default_rng(3)
-    vol = vol + 0.01 * rng.standard_normal(vol.shape)
-    lab = _label(vol, 0.03)
-    pts, mass, psf = _measured(vol, lab, origin, geom)
+    vol = vol + noise * np.random.default_rng(seed).standard_normal(vol.shape)
+    lab = _label(vol, 3.0 * noise)
+    return _measured(vol, lab, origin, geom)
+
+
+@pytest.mark.parametrize(
+    "normal, depth_um, length_um",
+    [
+        ((0.0, -math.sqrt(2.0 / 3.0), math.sqrt(1.0 / 3.0)), 40.0, 70.0),  # inclined (1-11)
+        ((1.0, 0.0, 0.0), 30.0, 60.0),  # vertical, normal in the scattering plane
+    ],
+)
+def test_forward_modelled_surface_crack_through_the_point_spread(normal, depth_um, length_um):
+    n, e_u, _ = _crack_axes(normal)
+    pts, mass, psf = _shallow_crack(normal, depth_um, length_um, 0.01, 3)
     reach = CORE_UM * math.sqrt(math.pi / 2.0)
     kw = dict(thickness_um=THICKNESS_UM, edge=NO_EDGE, bootstrap=10)
     r = measure.measure_crack_points(
@@ -208,33 +217,6 @@ def test_smeared_points_is_the_segment_integral_of_a_gaussian():
                          -half, half)[0]
         # the closed form leaves out the constant sqrt(alpha / (2 pi)) of the s-integral
         assert got[i] == pytest.approx(want * math.sqrt(alpha / (2.0 * math.pi)), rel=1e-7)
-
-
-def _shallow_crack(normal, depth_um: float, length_um: float, noise: float, seed: int):
-    """A shallow surface crack's volume through the point-spread (as in the test above)."""
-    geom = _geometry(12.0)
-    n = np.asarray(normal, float)
-    e_u = np.cross(n, [0.0, 0.0, 1.0])
-    e_u /= np.linalg.norm(e_u)
-    e_v = np.cross(e_u, n)
-    if e_v[2] < 0:
-        e_v = -e_v
-    a_in, c = depth_um / e_v[2], length_um / 2.0
-
-    def contrast(q):
-        u, v, w = q @ e_u, q @ e_v, q @ n
-        rho = np.sqrt((u / c) ** 2 + (np.maximum(v, 0.0) / a_in) ** 2)
-        rad = np.hypot(u, np.maximum(v, 0.0))
-        d_in = np.where(rho > 1.0, rad * (1.0 - 1.0 / np.maximum(rho, 1e-12)), 0.0)
-        return AMPLITUDE * np.exp(-(w * w + d_in * d_in) / (2.0 * CORE_UM**2))
-
-    half = 0.5 * length_um + 40.0
-    reach_y = abs(e_v[1]) * a_in + 40.0
-    p, origin = _grid((-half, -reach_y, -40.0), (half, reach_y, depth_um + 45.0))
-    vol = _smeared(contrast, p, geom)
-    vol = vol + noise * np.random.default_rng(seed).standard_normal(vol.shape)
-    lab = _label(vol, 3.0 * noise)
-    return _measured(vol, lab, origin, geom)
 
 
 @pytest.mark.parametrize(
