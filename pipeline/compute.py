@@ -241,9 +241,8 @@ class InTask:
     def __init__(self, array):
         from dask.core import flatten
 
-        keys = set(flatten(array.__dask_keys__()))
-        self._graph = dict(array.__dask_graph__().cull(keys))
         self._keys = array.__dask_keys__()
+        self._graph = dict(array.__dask_graph__().cull(set(flatten(self._keys))))
         self.shape = tuple(int(n) for n in array.shape)
         self.dtype = array.dtype
         self._name = array.name

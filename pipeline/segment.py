@@ -1398,10 +1398,13 @@ def segment_array(
     bg_zx = _column_background(q25, q50)
     bg = (bg_zy, bg_zx)
     cchunks = _compute_chunks(shape, p.depth, chunks or COMPUTE_CHUNKS)
-    # Under a distributed client each task reads its block with the halo itself (in_task):
-    # as Dask dependencies the overlap pieces are tasks of their own whose data cross between
-    # worker processes. "tasks": the P2P rechunk such a client picks by default cannot run
-    # inside a task. On the local schedulers the shared graph reads every chunk once.
+    # Under a distributed client each task reads its block with the halo itself (in_task), as
+    # register and measure do, instead of receiving the overlap pieces as tasks of their own
+    # from other workers. Not timed against that form: with it, the scaling bench volume's
+    # segment on 2 workers spent 0.13 s of 16 s of task time on transfers. "tasks": the P2P
+    # rechunk such a client picks by default cannot run inside a task. On the local
+    # schedulers the shared graph reads every chunk once (in-task reads of the bench's
+    # full-y chunks read each chunk about 8 times and were slower).
     read_in_task = current_client() is not None
     vc = vol.rechunk(cchunks, method="tasks") if read_in_task else vol.rechunk(cchunks)
     depth = {ax: (p.depth[ax] if len(cchunks[ax]) > 1 else 0) for ax in range(3)}

@@ -182,6 +182,20 @@ def test_scan_direction_does_not_matter(small_volume, tmp_path):
     np.testing.assert_allclose(b.compute(), a.compute(), atol=1e-6)
 
 
+def _counted_series(frames: np.ndarray, reads: list) -> SimpleNamespace:
+    """A series of ``frames`` (one Dask chunk per frame) that appends each frame index it reads
+    to ``reads``."""
+
+    def counting(block, block_info=None):
+        reads.append(block_info[0]["chunk-location"][0])
+        return block
+
+    return SimpleNamespace(
+        frames=da.from_array(frames, chunks=(1,) + frames.shape[1:]).map_blocks(counting, dtype=frames.dtype),
+        dark=None, flat=None, monitor=None,
+    )
+
+
 def test_frames_are_streamed_and_flagged_frames_unused(tmp_path):
     """Each slab reads only the frames it needs (no frame is read by more than two slabs), and
     a flagged frame with garbage never enters the volume."""
@@ -191,16 +205,7 @@ def test_frames_are_streamed_and_flagged_frames_unused(tmp_path):
     flagged = np.zeros(40, int)
     flagged[20] = 1
     reads = []
-
-    def counting(block, block_info=None):
-        reads.append(block_info[0]["chunk-location"][0])
-        return block
-
-    series = SimpleNamespace(
-        frames=da.from_array(frames, chunks=(1,) + frames.shape[1:]).map_blocks(counting, dtype=frames.dtype),
-        dark=None, flat=None, monitor=None,
-    )
-    corrected = correct_series(series, CorrectConfig(), band_level=1000.0)
+    corrected = correct_series(_counted_series(frames, reads), CorrectConfig(), band_level=1000.0)
     info = reconstruct_volume(corrected, geom, pos, _truth_table(pos, r0, c0, flagged),
                               ReconstructConfig(chunk_voxels=(8, 8, 16)), tmp_path / "v.ome.zarr")
     counts = np.bincount(reads, minlength=40)
@@ -225,16 +230,7 @@ def test_frames_read_once_per_task(tmp_path):
     volumes = {}
     for workers in (1, 2):
         reads = []
-
-        def counting(block, block_info=None, reads=reads):
-            reads.append(block_info[0]["chunk-location"][0])
-            return block
-
-        series = SimpleNamespace(
-            frames=da.from_array(frames, chunks=(1,) + frames.shape[1:]).map_blocks(counting, dtype=frames.dtype),
-            dark=None, flat=None, monitor=None,
-        )
-        corrected = correct_series(series, CorrectConfig(), band_level=1000.0)
+        corrected = correct_series(_counted_series(frames, reads), CorrectConfig(), band_level=1000.0)
         out = tmp_path / f"v{workers}.ome.zarr"
         with use_scheduler(ComputeConfig(workers=workers)):
             info = reconstruct_volume(corrected, geom, pos, _truth_table(pos, r0, c0),
