@@ -33,7 +33,13 @@ measured from its contrast instead:
    depth a has its mean distance from the boundary at 4 a / (3 pi), and variance c^2 / 4 along
    the mouth (c the half-length); a quarter ellipse the same means along both boundaries; a
    through crack's band of length l has variance l^2 / 12. The reach of the crack's own
-   contrast beyond its front (``CONTRAST_REACH_UM``) comes off each free end. The front is the
+   contrast beyond its front (``CONTRAST_REACH_UM``) comes off each free end; for half and
+   quarter ellipses the semi-axes are those whose footprint grown by that reach along the whole
+   front has the observed moments (:func:`_invert_footprint`: on a long thin front the reach
+   along the flanks moves the moment along the long axis, 2.9 um on a 26 x 173 um corner
+   crack). An edge crack whose labels come near a surface is a corner crack only if its mass
+   agrees (:func:`_mass_reaches_face`: the depth smear carries the labels of a crack that ends
+   tens of um short of the surface to within the touch tolerance). The front is the
    ellipse of those axes on the boundary; ``front.fit_rms_um`` stays the labelled outline's rms
    about its own ellipse fit (a shape check).
 4. One-sigma (``uncertainty.method`` says which path ran): bootstrap over the mass voxels
@@ -125,7 +131,7 @@ from pipeline.config import Acquisition, MeasureConfig
 from pipeline.crystal import canonical_normal, nearest_plane
 from pipeline.crystal import plane_angles as plane_angles_deg
 from pipeline.errors import InputError
-from pipeline.geometry import Geometry
+from pipeline.geometry import Geometry, ellipse_outside_d2
 
 log = logging.getLogger(__name__)
 
@@ -1059,6 +1065,38 @@ def _from_fit_coords(
     return c1 + np.outer(q[:, 0], e_c) + np.outer(q[:, 1] - d0 / g, e_a)
 
 
+def _mass_reaches_face(
+    pin: np.ndarray,
+    mass: ContrastMass,
+    face: _Boundary,
+    thickness_um: float,
+    edge: WaferEdge,
+    point_spread: PointSpread | None,
+    reach_um: float,
+) -> bool:
+    """Whether an edge crack whose labels come near a surface is a corner crack by its mass.
+
+    The labels of an edge crack that stops short of a surface can reach within the touch
+    tolerance of it: the smear along the diffracted beam runs mostly in depth (+-12..17 um in
+    the random scans). A corner crack's mass has its mean distance from the face at
+    ``4 L / (3 pi)`` of its extent L from the face (a quarter ellipse), so the L it implies
+    lies within the labels' own reach from the face plus the smear; a mid-thickness crack
+    that only came near the face implies an L far beyond it (one scan of the harness: 367 um
+    against labels reaching 284 um). Too little mass to tell keeps the labels' answer.
+    """
+    if len(mass.excess) < MIN_VOXELS or mass.snr < MIN_MASS_SNR:
+        return True
+    e = mass.excess
+    tot = float(e.sum())
+    if not tot > 0:
+        return True
+    mean = float(np.sum(e * face.distance(mass.points_um, thickness_um, edge))) / tot
+    implied = 0.75 * math.pi * mean - reach_um
+    smear = 0.0 if point_spread is None else float(point_spread.half_length_um)
+    reach_labels = float(face.distance(pin, thickness_um, edge).max())
+    return implied <= reach_labels + smear
+
+
 def measure_crack_points(
     points_um: np.ndarray,
     voxel_um: tuple[float, float, float],
@@ -1146,6 +1184,12 @@ def measure_crack_points(
         for name, b in bnds.items()
     }
     touches.setdefault("edge", False)
+    if touches["edge"] and touches["top"] != touches["bottom"] and mass is not None:
+        face = "top" if touches["top"] else "bottom"
+        if not _mass_reaches_face(
+            pin, mass, bnds[face], thickness_um, edge, point_spread, reach_um
+        ):
+            touches[face] = False
     if touches["edge"]:
         kind = "edge"
     elif touches["top"] and touches["bottom"]:
@@ -1199,7 +1243,9 @@ def measure_crack_points(
     fwd_used = False
     if mass is not None and len(mass.excess) >= MIN_VOXELS and mass.snr >= MIN_MASS_SNR:
         try:
-            mg = _crack_from_mass(mass.points_um, mass.excess, psf_cov, ctx, reach_um)
+            mg = _crack_from_mass(
+                mass.points_um, mass.excess, psf_cov, ctx, reach_um, footprint=True
+            )
         except (ValueError, np.linalg.LinAlgError) as exc:
             log.debug("measure: contrast mass not used (%s)", exc)
             mg = None
@@ -1224,7 +1270,9 @@ def measure_crack_points(
                         plane_angles_deg(mg["normal"])[0],
                     )
                     n_f = fwd[0]
-                    mg_f = _crack_from_mass(mass.points_um, mass.excess, psf_cov, ctx, reach_um, n_f)
+                    mg_f = _crack_from_mass(
+                        mass.points_um, mass.excess, psf_cov, ctx, reach_um, n_f, footprint=True
+                    )
                     mg = mg_f or mg
                     sd_i = fwd[1]
                     fwd_used = True
@@ -1246,9 +1294,18 @@ def measure_crack_points(
                 w_m = 1.0 / max(math.radians(sd_i), 1e-4) ** 2
                 w_l = 1.0 / math.radians(s_l) ** 2
                 n_c = _orient(_unit(w_m * mg["normal"] + w_l * n_l))
-                mg = _crack_from_mass(
-                    mass.points_um, mass.excess, psf_cov, ctx, reach_um, normal=n_c
-                ) or mg
+                mg = (
+                    _crack_from_mass(
+                        mass.points_um,
+                        mass.excess,
+                        psf_cov,
+                        ctx,
+                        reach_um,
+                        normal=n_c,
+                        footprint=True,
+                    )
+                    or mg
+                )
                 sd_i = math.degrees(1.0 / math.sqrt(w_m + w_l))
             n = mg["normal"]
             res = (pin[g["interior"]] - mg["centroid"]) @ n
@@ -1557,6 +1614,76 @@ def _mass_moments(
     return mu, cov
 
 
+#: Invert the footprint model (:func:`_footprint_moments`) for half and quarter ellipses.
+FOOTPRINT_MODEL = True
+#: What an extent taken from a first moment (depth of half and quarter ellipses, a quarter
+#: ellipse's length) gains beyond the footprint model, um: the crack contrast's soft tail
+#: (core plus exponential halo about the front) puts its mass farther out than the band of the
+#: same mass-equivalent reach does. The forward model's contrast alone, without point-spread,
+#: gives +0.4..+1.1 um on half and quarter ellipses of 18-65 um x 18-173 um; the harness
+#: (exact registration, seeds 100-120, 39 surface and edge cracks) a mean depth excess of
+#: +0.63 um, so 0.6 um; checked on seeds 0-20 and 200-208 (docs/accuracy.md). Not applied
+#: to the half ellipse's length, a second moment along the mouth, whose tail the contrast
+#: region's one-voxel shell mostly cuts (its excess there: +0.3 um).
+TAIL_FIRST_MOMENT_UM = 0.6
+
+
+def _footprint_moments(
+    a_um: float, c_um: float, quarter: bool, reach_um: float
+) -> tuple[float, float, float]:
+    """Moments (um, um, um) of a crack's contrast footprint in its plane: the uniform half (or
+    quarter) ellipse of semi-axes ``a_um`` (from the mouth) and ``c_um`` (along it) grown by
+    ``reach_um`` beyond its front, on the wafer's side of the boundary (u >= 0; v >= 0 too for
+    the quarter ellipse at a corner).
+
+    Returns ``(mean u, mean v, sd v)``: the first is the moment estimate of depth, the
+    second (quarter) or third (half) that of the length. Growing the front by a constant
+    reach adds ``reach`` to a circle's semi-axes, but not to a long thin ellipse's: there the
+    reach along the flanks (a band of width ``reach`` along the long side) moves the moment
+    along the long axis too, by up to 2.9 um for a 26 um x 173 um quarter ellipse (exact
+    nearest-point distance, :func:`pipeline.geometry.ellipse_outside_d2`). Numerical, on an
+    in-plane grid of step min(a, c) / 40 (0.1-0.5 um, coarser beyond 2e5 points) with the edge anti-aliased over one step.
+    """
+    a, c, r = max(float(a_um), 0.05), max(float(c_um), 0.05), max(float(reach_um), 0.0)
+    h = min(max(min(a, c) / 40.0, 0.1), 0.5)
+    h = max(h, math.sqrt((a + r) * (2.0 * c + 2.0 * r) / 2e5))  # at most ~2e5 grid points
+    u = np.arange(0.5 * h, a + r + h, h)
+    v = np.arange(0.5 * h, c + r + h, h) if quarter else np.arange(-c - r - h, c + r + h, h)
+    uu, vv = np.meshgrid(u, v, indexing="ij")
+    d = np.sqrt(ellipse_outside_d2(uu, vv, a, c))
+    m = np.clip((r - d) / h + 0.5, 0.0, 1.0)
+    tot = float(m.sum())
+    mu, mv = float((m * uu).sum()) / tot, float((m * vv).sum()) / tot
+    sv = math.sqrt(max(float((m * vv * vv).sum()) / tot - mv * mv, 0.0))
+    return mu, mv, sv
+
+
+def _invert_footprint(
+    mean_u_um: float, along_um: float, quarter: bool, reach_um: float, start: tuple[float, float]
+) -> tuple[float, float] | None:
+    """Semi-axes (a, c), um, whose footprint (:func:`_footprint_moments`) has the observed
+    mean distance from the mouth ``mean_u_um`` and, along the mouth, the observed mean distance
+    from the other boundary (quarter ellipse) or standard deviation (half ellipse)
+    ``along_um``; None where the least-squares solution does not reproduce them to 1 %."""
+    if not (mean_u_um > 0 and along_um > 0 and reach_um > 0):
+        return None
+
+    def resid(x: np.ndarray) -> np.ndarray:
+        mu, mv, sv = _footprint_moments(x[0], x[1], quarter, reach_um)
+        return np.array([mu / mean_u_um - 1.0, (mv if quarter else sv) / along_um - 1.0])
+
+    x0 = np.maximum(np.asarray(start, float), 0.5)
+    try:
+        sol = least_squares(
+            resid, x0, bounds=([0.05, 0.05], [1e5, 1e5]), x_scale=x0, diff_step=1e-3
+        )
+    except (ValueError, np.linalg.LinAlgError):
+        return None
+    if not sol.success or float(np.max(np.abs(sol.fun))) > 0.01:
+        return None
+    return float(sol.x[0]), float(sol.x[1])
+
+
 def _crack_from_mass(
     q: np.ndarray,
     e: np.ndarray,
@@ -1564,6 +1691,7 @@ def _crack_from_mass(
     ctx: _CrackCtx,
     reach_um: float,
     normal: np.ndarray | None = None,
+    footprint: bool = False,
 ) -> dict[str, Any] | None:
     """Plane, depth, length and front of a crack from its contrast mass (None: internal crack).
 
@@ -1574,7 +1702,10 @@ def _crack_from_mass(
     its variance along the mouth c^2 / 4 (c the half-length); a quarter ellipse the same means
     along both boundaries; a through crack's band of length l has variance l^2 / 12. The reach
     of the crack's own contrast beyond the front (``reach_um``) is taken off every free end.
-    ``normal`` replaces the mass's own plane normal when given.
+    ``normal`` replaces the mass's own plane normal when given. With ``footprint`` (and
+    :data:`FOOTPRINT_MODEL`) the half and quarter ellipses' semi-axes are instead those whose
+    footprint grown by the reach has the observed moments (:func:`_invert_footprint`), which
+    corrects long thin fronts; the bootstrap leaves it out (its spreads are the moments').
     """
     mu, cov = _mass_moments(q, e, psf_cov)
     _, vec = np.linalg.eigh(cov)
@@ -1605,6 +1736,16 @@ def _crack_from_mass(
         g = max(abs(float(e_a @ m)), 1e-6)
         depth = max(0.75 * math.pi * mean_dist(prim) - reach_um, 0.0)
         length = max(4.0 * math.sqrt(var_along(e_c)) - 2.0 * reach_um, 0.0)
+        if footprint and FOOTPRINT_MODEL:
+            ac = _invert_footprint(
+                mean_dist(prim) / g,
+                math.sqrt(var_along(e_c)),
+                False,
+                reach_um,
+                (depth / g, 0.5 * length),
+            )
+            if ac is not None:
+                depth, length = max(ac[0] - TAIL_FIRST_MOMENT_UM, 0.0) * g, 2.0 * ac[1]
         base = mu - (float(ctx.dist(prim, mu[None, :])[0]) / g) * e_a
         th = np.linspace(0.0, math.pi, 65)[:, None]
         front = base + 0.5 * length * np.cos(th) * e_c + (depth / g) * np.sin(th) * e_a
@@ -1624,6 +1765,13 @@ def _crack_from_mass(
         mf, me = ctx.bnds[face].m, ctx.bnds["edge"].m
         depth = max(0.75 * math.pi * mean_dist("edge") - reach_um, 0.0)
         length = max(0.75 * math.pi * mean_dist(face) - reach_um, 0.0)
+        if footprint and FOOTPRINT_MODEL:
+            ac = _invert_footprint(
+                mean_dist("edge"), mean_dist(face), True, reach_um, (depth, length)
+            )
+            if ac is not None:
+                depth = max(ac[0] - TAIL_FIRST_MOMENT_UM, 0.0)
+                length = max(ac[1] - TAIL_FIRST_MOMENT_UM, 0.0)
         mm = np.vstack([[mf @ e_u, mf @ e_v], [me @ e_u, me @ e_v]])
         d0 = np.array([ctx.dist(face, mu[None, :])[0], ctx.dist("edge", mu[None, :])[0]])
         th = np.linspace(0.0, 0.5 * math.pi, 33)
@@ -1813,7 +1961,9 @@ def _crack_forward_normal(
     n_u = max(3, int(math.ceil(2.0 * float(np.linalg.norm(u0)) / spacing)))
     n_v = max(2, int(math.ceil(float(np.linalg.norm(v0)) / spacing)))
     shrink = math.sqrt(min(1.0, 2.0 * FORWARD_MAX_PATCH / (n_u * n_v)))  # a half disk: ~n_u n_v / 2
-    ss, tt = _unit_half_disk(max(3, int(math.ceil(n_u * shrink))), max(2, int(math.ceil(n_v * shrink))))
+    ss, tt = _unit_half_disk(
+        max(3, int(math.ceil(n_u * shrink))), max(2, int(math.ceil(n_v * shrink)))
+    )
     n_all = len(e)
     if n_all > FORWARD_MAX_VOXELS:
         pick = np.sort(np.random.default_rng(0).choice(n_all, FORWARD_MAX_VOXELS, replace=False))
@@ -1831,8 +1981,11 @@ def _crack_forward_normal(
         n = normal_of(x)
         mg = _crack_from_mass(q, e, cov, ctx, reach_um, normal=n)
         base, u, v = mg["patch"]
-        pts = base + x[2] * n + ss[:, None] * (math.exp(x[3]) * u) + tt[:, None] * (
-            math.exp(x[4]) * v
+        pts = (
+            base
+            + x[2] * n
+            + ss[:, None] * (math.exp(x[3]) * u)
+            + tt[:, None] * (math.exp(x[4]) * v)
         )
         prec = np.linalg.inv(rest + x[5] ** 2 * np.eye(3))
         a = np.column_stack([_smeared_points(q_fit, pts, d, h, prec), ones])

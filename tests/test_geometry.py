@@ -12,6 +12,8 @@ Sources named beside each check:
 - ../shared/PHYSICS.md "Check values for tests" rows 1-4, 11, 12 (values computed there from
   Bragg's law and the section-width formula W = 2 t sin(theta_B) of Lang (1959), J. Appl.
   Phys. 30, 1748, and Authier (2001), Dynamical Theory of X-ray Diffraction, ch. 5).
+- Distance from a point to an ellipse: Eberly (2011), Distance from a point to an ellipse, an
+  ellipsoid, or a hyperellipsoid (Geometric Tools), against a direct search with scipy.
 - The parallel projection along the diffracted beam onto a (tilted) detector plane,
   PHYSICS.md section 1.4, evaluated here by ray-plane intersection as an independent oracle for
   ``Geometry.project``.
@@ -36,6 +38,7 @@ from pipeline.geometry import (
     bragg_angle_deg,
     d_spacing_A,
     depth_magnification,
+    ellipse_outside_d2,
     natural_voxel_um,
     wavelength_A,
 )
@@ -344,3 +347,34 @@ def test_project_matches_ray_plane_intersection(geom, data):
     scale = max(geom.thickness_um * abs(geom.G), 30.0 * abs(geom.L), 1.0)
     np.testing.assert_allclose(col * geom.p_col_um, expected_um, rtol=1e-9, atol=1e-9 * scale)
     np.testing.assert_allclose(D_out, D, atol=1e-9 * (abs(X_k) + abs(x).max() + 1))
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    log_a=st.floats(0.0, math.log(500.0)),
+    log_c=st.floats(0.0, math.log(500.0)),
+    s=st.floats(-3.0, 3.0),
+    t=st.floats(-3.0, 3.0),
+)
+def test_ellipse_distance_equals_nearest_point_on_the_ellipse(log_a, log_c, s, t):
+    """Distance to the crack front (exact nearest point, Eberly 2011) against a direct search:
+    the squared distance to points (a cos phi, c sin phi) at 20001 angles, refined by scipy's
+    bounded scalar minimiser about the best one; 0 inside the ellipse."""
+    from scipy.optimize import minimize_scalar
+
+    a, c = math.exp(log_a), math.exp(log_c)
+    p0, p1 = s * a, t * c
+    got = math.sqrt(float(ellipse_outside_d2(np.array([p0]), np.array([p1]), a, c)[0]))
+    if (p0 / a) ** 2 + (p1 / c) ** 2 <= 1.0:
+        assert got == 0.0
+        return
+    phi = np.linspace(0.0, 2.0 * math.pi, 20001)
+
+    def d2(f):
+        return (a * math.cos(f) - p0) ** 2 + (c * math.sin(f) - p1) ** 2
+
+    i = int(np.argmin((a * np.cos(phi) - p0) ** 2 + (c * np.sin(phi) - p1) ** 2))
+    ref = minimize_scalar(
+        d2, bounds=(phi[i] - 4e-4, phi[i] + 4e-4), method="bounded", options={"xatol": 1e-12}
+    )
+    assert got == pytest.approx(math.sqrt(ref.fun), abs=1e-6 * max(a, c))

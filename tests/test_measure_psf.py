@@ -26,6 +26,8 @@ import math
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import ndimage as ndi
 
 from pipeline import measure
@@ -213,8 +215,9 @@ def test_smeared_points_is_the_segment_integral_of_a_gaussian():
         want = 0.0
         for p in pts:
             r0 = q[i] - p
-            want += quad(lambda s, r0=r0: math.exp(-0.5 * (r0 - s * d) @ prec @ (r0 - s * d)),
-                         -half, half)[0]
+            want += quad(
+                lambda s, r0=r0: math.exp(-0.5 * (r0 - s * d) @ prec @ (r0 - s * d)), -half, half
+            )[0]
         # the closed form leaves out the constant sqrt(alpha / (2 pi)) of the s-integral
         assert got[i] == pytest.approx(want * math.sqrt(alpha / (2.0 * math.pi)), rel=1e-7)
 
@@ -296,3 +299,89 @@ def test_contrast_mass_takes_the_band_and_its_fringes_out():
     _, mass, _ = _measured(vol, lab, origin, geom)
     assert abs(mass.snr) < measure.MIN_MASS_SNR
     assert mass.noise == pytest.approx(0.01, rel=0.3)
+
+
+# ---------------------------------------------------------------------------------------------
+# The crack's footprint grown by its contrast's reach (long thin fronts)
+
+
+def test_footprint_moments_match_the_plane_area_tables():
+    """Moments of the footprint model against the tables of plane areas (Beer & Johnston,
+    Vector Mechanics for Engineers, centroids and second moments of plane areas): a half
+    ellipse of semi-axes a (from its diameter) and c has its centroid at 4 a / (3 pi) from the
+    diameter and I = pi a c^3 / 8 about the axis across it (so sd = c / 2 along the diameter);
+    a quarter ellipse its centroid at (4 a / (3 pi), 4 c / (3 pi)). A half disc grown by r
+    beyond its arc (on its side of the diameter) is the half disc of radius a + r."""
+    mu, _, sv = measure._footprint_moments(30.0, 80.0, False, 0.0)
+    assert mu == pytest.approx(4 * 30.0 / (3 * math.pi), rel=5e-3)
+    assert sv == pytest.approx(80.0 / 2, rel=5e-3)
+    mu, mv, _ = measure._footprint_moments(25.0, 60.0, True, 0.0)
+    assert (mu, mv) == pytest.approx((4 * 25.0 / (3 * math.pi), 4 * 60.0 / (3 * math.pi)), rel=5e-3)
+    mu, _, sv = measure._footprint_moments(40.0, 40.0, False, 3.3)
+    assert mu == pytest.approx(4 * 43.3 / (3 * math.pi), rel=5e-3)
+    assert sv == pytest.approx(43.3 / 2, rel=5e-3)
+
+
+@settings(max_examples=25, deadline=None)
+@given(
+    a=st.floats(8.0, 200.0),
+    c=st.floats(8.0, 200.0),
+    quarter=st.booleans(),
+    reach=st.floats(1.0, 6.0),
+)
+def test_footprint_inversion_round_trip(a, c, quarter, reach):
+    """The semi-axes come back from the footprint's moments (random shapes and reaches)."""
+    mu, mv, sv = measure._footprint_moments(a, c, quarter, reach)
+    along = mv if quarter else sv
+    start = (
+        0.75 * math.pi * mu - reach,
+        (0.75 * math.pi * mv - reach) if quarter else 2 * sv - reach,
+    )
+    got = measure._invert_footprint(mu, along, quarter, reach, start)
+    assert got is not None
+    assert got == pytest.approx((a, c), rel=2e-3, abs=0.02)
+
+
+def test_long_thin_corner_crack_needs_the_footprint_model():
+    """A 26 um x 173 um corner crack (as in the harness): the reach along its long flank moves
+    the mass along the face, so taking the reach off each end leaves the length 2.9 um long;
+    the footprint model recovers both semi-axes."""
+    mu, mv, _ = measure._footprint_moments(26.0, 173.0, True, 3.3)
+    naive = 0.75 * math.pi * mv - 3.3
+    assert naive - 173.0 > 2.0
+    got = measure._invert_footprint(mu, mv, True, 3.3, (0.75 * math.pi * mu - 3.3, naive))
+    assert got == pytest.approx((26.0, 173.0), abs=0.05)
+
+
+def _edge_mass(z_lo: float, z_hi: float, depth: float, quarter_face: float | None = None):
+    """Uniform contrast mass of a vertical edge crack (plane y = 0, edge at x = 0 inward +x)
+    between depths z_lo and z_hi: a half ellipse in (x, z), or a quarter ellipse from the face
+    z = quarter_face."""
+    xs = np.arange(0.0, depth + 1e-9, 1.0)
+    zs = np.arange(z_lo, z_hi + 1e-9, 1.0)
+    xx, zz = np.meshgrid(xs, zs, indexing="ij")
+    if quarter_face is None:
+        zc, c = 0.5 * (z_lo + z_hi), 0.5 * (z_hi - z_lo)
+        keep = (xx / depth) ** 2 + ((zz - zc) / c) ** 2 <= 1.0
+    else:
+        c = z_hi - z_lo
+        keep = (xx / depth) ** 2 + ((zz - quarter_face) / c) ** 2 <= 1.0
+    p = np.column_stack([xx[keep], np.zeros(keep.sum()), zz[keep]])
+    return measure.ContrastMass(p, np.ones(len(p)), 0.001)
+
+
+def test_edge_crack_stopping_short_of_a_surface_is_no_corner_crack():
+    """The labels of an edge crack that ends 48 um above the exit surface came within the touch
+    tolerance (the depth smear); its mass's mean distance from the face implies an extent from
+    it far beyond the labels' reach, so it is not taken for a corner crack; a real corner crack
+    is kept."""
+    t = 775.0
+    edge = WaferEdge(np.array([150_000.0, 0.0]), 150_000.0)  # edge at x = 0, inward +x
+    bottom = measure._boundaries(np.array([10.0, 0.0, 600.0]), edge)["bottom"]
+    psf = measure.PointSpread(np.array([0.0, 0.0, 1.0]), 15.0, np.zeros((3, 3)))
+    mid = _edge_mass(509.0, 727.0, 86.0)
+    labels_mid = np.array([[10.0, 0.0, 491.0], [10.0, 0.0, 755.0]])  # smeared labels
+    assert not measure._mass_reaches_face(labels_mid, mid, bottom, t, edge, psf, 3.3)
+    corner = _edge_mass(600.0, t, 40.0, quarter_face=t)
+    labels_corner = np.array([[10.0, 0.0, 585.0], [10.0, 0.0, t]])
+    assert measure._mass_reaches_face(labels_corner, corner, bottom, t, edge, psf, 3.3)
