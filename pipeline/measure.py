@@ -1642,7 +1642,8 @@ def _footprint_moments(
     reach along the flanks (a band of width ``reach`` along the long side) moves the moment
     along the long axis too, by up to 2.9 um for a 26 um x 173 um quarter ellipse (exact
     nearest-point distance, :func:`pipeline.geometry.ellipse_outside_d2`). Numerical, on an
-    in-plane grid of step min(a, c) / 40 (0.1-0.5 um, coarser beyond 2e5 points) with the edge anti-aliased over one step.
+    in-plane grid of step min(a, c) / 40 (0.1-0.5 um, coarser beyond 2e5 points) with the
+    edge anti-aliased over one step.
     """
     a, c, r = max(float(a_um), 0.05), max(float(c_um), 0.05), max(float(reach_um), 0.0)
     h = min(max(min(a, c) / 40.0, 0.1), 0.5)
