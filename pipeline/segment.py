@@ -388,9 +388,8 @@ def _column_quantiles_block(block: np.ndarray, bg_zy: np.ndarray, band: float) -
     # the harness, seed 200). mode="nearest": a block's own border is no edge (an edge
     # within this margin of an x block border keeps its step voxels, as before).
     e = EDGE_ERODE_VOX + 1
-    inside_c = ndi.minimum_filter(inside, size=(1, 2 * e + 1, 2 * e + 1), mode="nearest")
-    few = inside_c.sum(axis=1) < max(MIN_ROW_VOXELS, block.shape[1] // 2)
-    inside = inside_c
+    inside = ndi.minimum_filter(inside, size=(1, 2 * e + 1, 2 * e + 1), mode="nearest")
+    few = inside.sum(axis=1) < max(MIN_ROW_VOXELS, block.shape[1] // 2)
     diff = np.swapaxes(block - b, 1, 2)  # (z, x, y)
     ok = np.swapaxes(inside, 1, 2)
     q25, q50 = _masked_quantile(diff, ok, 0.25), _masked_quantile(diff, ok, 0.5)
