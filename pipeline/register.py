@@ -23,7 +23,14 @@ Thurman & Fienup 2008, Opt. Lett. 33, 156, as in scikit-image's ``phase_cross_co
 written out for 1-D: :func:`shift_1d`). Frames whose entrance region no longer resembles the
 template (quality below :data:`MIN_COLUMN_QUALITY`, e.g. the edge cuts the band just below the
 entrance) take their column origin from their neighbours and are marked ``interpolated``, not
-flagged. The absolute entrance-surface column is then found once, on the median of the aligned
+flagged. A defect at the entrance surface that crosses most rows (a surface crack whose trace
+runs along the slit) survives the median over rows and moves the entrance edge of the frames
+that light it (0.61-0.68 px in an evaluation scan): each frame's equations are weighted by how
+far its entrance region's shape departs from the template's against the series' median frame
+(:func:`shape_weights`), in transmission the exit region (the band's width is the wafer's
+thickness, so it moves with the entrance) adds one absolute equation per frame with its own
+shape weight, and a weak smoothness prior carries a frame disturbed at both surfaces (or at the
+entrance with the exit off the wafer) with its neighbours. The absolute entrance-surface column is then found once, on the median of the aligned
 mean profiles, by fitting :func:`surface_edge_model` (surface step integrated over a pixel,
 bright surface line, decay with depth in reflection, convolved with the slit's box and a
 Gaussian): the plain half-maximum crossing is biased by whatever lies just inside the surface
@@ -113,6 +120,10 @@ SMOOTH_WEIGHT = 0.01
 #: 2 px off).
 MIN_COLUMN_QUALITY = 0.5
 MIN_PLAIN_ROWS = 0.25
+#: A frame's column equations from a surface region lose half their weight where its shape
+#: disagrees with the template this many times more than the series' median frame
+#: (:func:`shape_weights`).
+SHAPE_RATIO = 5.0
 #: Smallest match score (1 - normalised RMS error) of a column shift that is used.
 MIN_MATCH = 0.3
 #: A pairwise row shift is used when the normalised correlation at its peak reaches this
@@ -793,6 +804,58 @@ def robust_solve(
     return np.asarray(x, float), med, cnt
 
 
+def shape_weights(disagreement: np.ndarray, ok: np.ndarray, ratio: float = SHAPE_RATIO) -> np.ndarray:
+    """Weights (0..1] of frames' column equations from their shape disagreement with the
+    template (1 - normalised correlation): ``1 / (1 + (d / (ratio * d_typ))^2)`` with ``d_typ``
+    the median over the ``ok`` frames (the noise level of the series, at least 1e-6).
+
+    Noise lowers every frame's correlation alike; a defect at the surface changes the shape of
+    a few frames by tens to hundreds of times that (108-271 times in the frames of an
+    evaluation scan whose entrance a crack crossed over most rows)."""
+    d = np.nan_to_num(np.asarray(disagreement, float), nan=1.0)
+    typ = max(float(np.median(d[ok])) if ok.any() else 1.0, 1e-6)
+    return 1.0 / (1.0 + (np.maximum(d, 0.0) / (ratio * typ)) ** 2)
+
+
+def _exit_window(
+    edges: list[BandEdges], found: np.ndarray, ewin: slice, margin: int, n_cols: int
+) -> slice | None:
+    """Column window of the exit region (the entrance window mirrored about the exit), or None
+    when the exit is not seen or the window would reach the entrance's."""
+    ext = np.array([e.exit_col for e in edges], float)[found]
+    ext = ext[np.isfinite(ext)]
+    if ext.size == 0:
+        return None
+    ref = float(np.median(ext))
+    lo, hi = math.floor(ref) - 2 * margin - 24, math.ceil(ref) + 2 * margin + 4
+    if lo < ewin.stop or hi > n_cols:
+        return None
+    return slice(lo, hi)
+
+
+def _exit_equations(
+    profiles: np.ndarray, template: np.ndarray, xwin: slice, idx: np.ndarray, upsample_factor: int
+) -> list[tuple[int, float, float]]:
+    """Absolute column equations from the exit region: each frame's shift to the template
+    there, weighted by the exit region's own shape agreement (:func:`shape_weights`).
+
+    The band's width is the wafer's thickness (uniform over a scan), so the exit moves with
+    the entrance; what lies at the exit surface disturbs only this region."""
+    t_sig = _prepare_1d(template[xwin], gradient=True)
+    shifts = np.full(len(profiles), np.nan)
+    dis = np.full(len(profiles), np.nan)
+    for k in idx:
+        d, q = shift_1d(t_sig, _prepare_1d(profiles[k][xwin], gradient=True), upsample_factor)
+        if q >= MIN_MATCH:
+            shifts[k] = d
+            dis[k] = 1.0 - _ncc(_align(profiles[k], d)[xwin], template[xwin])
+    ok = np.isfinite(shifts)
+    if not ok.any():
+        return []
+    w = shape_weights(dis, ok)
+    return [(int(k), float(shifts[k]), float(w[k])) for k in np.nonzero(ok)[0]]
+
+
 def _interp_flagged(values: np.ndarray, good: np.ndarray) -> np.ndarray:
     idx = np.arange(values.size)
     if good.sum() == 0:
@@ -1031,8 +1094,19 @@ def register_frames(
     if col_ok.sum() < 2:
         col_ok = good.copy()
     cidx = np.nonzero(col_ok)[0]
-    col_pairs = [(int(k), int(k) + m, dc, 1.0) for k in cidx for (m, dc, qc, _) in pair_meas[k]
+    #    A frame whose entrance region differs in shape from the series' far more than noise
+    #    does (a crack at the entrance surface over most rows: 0.68 px off in an evaluation
+    #    scan) has its entrance equations down-weighted (:func:`shape_weights`); in
+    #    transmission each frame's exit region, matched to the template's, also enters with
+    #    its own shape weight, and a weak smoothness prior carries a frame disturbed at both
+    #    surfaces along with its neighbours.
+    w_ent = shape_weights(1.0 - quality, col_ok)
+    xwin = _exit_window(edges, found, ewin, margin, n_cols) if transmission else None
+    col_pairs = [(int(k), int(k) + m, dc, float(min(w_ent[k], w_ent[int(k) + m])))
+                 for k in cidx for (m, dc, qc, _) in pair_meas[k]
                  if col_ok[int(k) + m] and qc >= MIN_MATCH]
+    col_pairs += [(int(k), int(j), 0.0, SMOOTH_WEIGHT / max(1, int(j - k)))
+                  for k, j in zip(cidx[:-1], cidx[1:], strict=True)]
     shift0 = ent - ref_ent
     for _ in range(2):
         t_sig = _entrance_signal(template, win)
@@ -1040,9 +1114,11 @@ def register_frames(
         for k in cidx:
             d, q = shift_1d(t_sig, _entrance_signal(profiles[k], win), cfg.upsample_factor)
             if q >= MIN_MATCH:
-                col_abs.append((int(k), d, 1.0))
+                col_abs.append((int(k), d, float(w_ent[k])))
         if not col_abs:
             col_abs = [(int(k), float(shift0[k]), ANCHOR_WEIGHT) for k in cidx if math.isfinite(shift0[k])]
+        if xwin is not None:
+            col_abs += _exit_equations(profiles, template, xwin, cidx, cfg.upsample_factor)
         s_col, c_res, _ = robust_solve(n, col_pairs, col_abs)
         s_col = _interp_flagged(s_col, col_ok)
         s_ref = float(np.median(s_col[cidx]))
