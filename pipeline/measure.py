@@ -39,9 +39,13 @@ measured from its contrast instead:
    quarter ellipses the semi-axes are those whose footprint grown by that reach along the whole
    front has the observed moments (:func:`_invert_footprint`: on a long thin front the reach
    along the flanks moves the moment along the long axis, 2.9 um on a 26 x 173 um corner
-   crack). An edge crack whose labels come near a surface is a corner crack only if its mass
-   agrees (:func:`_mass_reaches_face`: the depth smear carries the labels of a crack that ends
-   tens of um short of the surface to within the touch tolerance). The front is the
+   crack). An edge crack at mid-thickness takes its length (along z, the smear's direction,
+   where the second moment weights the contrast's soft tail and the region's background most)
+   from the forward model's patch instead (:func:`_crack_forward_fit`,
+   :data:`FORWARD_EDGE_LENGTH`). An edge crack whose labels come near a surface is a corner
+   crack only if its mass agrees (:func:`_mass_reaches_face`: the depth smear carries the
+   labels of a crack that ends tens of um short of the surface to within the touch
+   tolerance). The front is the
    ellipse of those axes on the boundary; ``front.fit_rms_um`` stays the labelled outline's rms
    about its own ellipse fit (a shape check).
 4. One-sigma (``uncertainty.method`` says which path ran): bootstrap over the mass voxels
@@ -1341,7 +1345,9 @@ def measure_crack_points(
                         mg["length"],
                     )
                     mg = mg_e
-                    edge_len = math.hypot(2.0 * edge_fit.sigma_half_length_um, FORWARD_EDGE_SIGMA_UM)
+                    edge_len = math.hypot(
+                        2.0 * edge_fit.sigma_half_length_um, FORWARD_EDGE_SIGMA_UM
+                    )
             n = mg["normal"]
             res = (pin[g["interior"]] - mg["centroid"]) @ n
             plane = plane_record(n, float(np.sqrt(np.mean(res**2))), z_uvw, x_uvw)
@@ -1351,7 +1357,9 @@ def measure_crack_points(
             through = kind == "through"
             noise_um = MASS_NOISE_UM / mass.snr  # snr >= MIN_MASS_SNR here (finite or inf)
             sig_d = 0.0 if through else math.hypot(sd_d, MODEL_SIGMA_DEPTH_UM, noise_um)
-            sig_l = math.hypot(sd_l, MODEL_SIGMA_LENGTH_UM, noise_um) if edge_len is None else edge_len
+            sig_l = math.hypot(sd_l, MODEL_SIGMA_LENGTH_UM, noise_um)
+            if edge_len is not None:
+                sig_l = edge_len
             sig_i = math.hypot(sd_i, math.degrees(MODEL_SIGMA_TILT_UM / mg["dip_um"]))
             method = (
                 "contrast mass (excess intensity) with the volume's point-spread taken out: "
@@ -1369,9 +1377,10 @@ def measure_crack_points(
                 )
             if edge_len is not None:
                 method += (
-                    "; length along z from the same forward model fitted to the edge crack (less "
-                    f"{FORWARD_EDGE_REACH_UM} um of contrast reach per end), its one-sigma from the "
-                    f"fit covariance and a calibrated model error of {FORWARD_EDGE_SIGMA_UM} um"
+                    "; length along z from the same forward model fitted to the edge crack "
+                    f"(less {FORWARD_EDGE_REACH_UM} um of contrast reach per end), its "
+                    "one-sigma from the fit covariance and a calibrated model error of "
+                    f"{FORWARD_EDGE_SIGMA_UM} um"
                 )
     front = {
         "a_um": g["a"],

@@ -30,13 +30,14 @@ far its entrance region's shape departs from the template's against the series' 
 (:func:`shape_weights`), in transmission the exit region (the band's width is the wafer's
 thickness, so it moves with the entrance) adds one absolute equation per frame with its own
 shape weight, and a weak smoothness prior carries a frame disturbed at both surfaces (or at the
-entrance with the exit off the wafer) with its neighbours. The absolute entrance-surface column is then found once, on the median of the aligned
-mean profiles, by fitting :func:`surface_edge_model` (surface step integrated over a pixel,
-bright surface line, decay with depth in reflection, convolved with the slit's box and a
-Gaussian): the plain half-maximum crossing is biased by whatever lies just inside the surface
-(by ~1 px with a bright surface line in a synthetic test). In transmission the same fit on the
-mirrored exit edge gives the band width ``t G / p_col``: the calibration of G, with a warning
-when it differs from the computed G by more than ``g_tolerance``.
+entrance with the exit off the wafer) with its neighbours. The absolute entrance-surface column
+is then found once, on the median of the aligned mean profiles, by fitting
+:func:`surface_edge_model` (surface step integrated over a pixel, bright surface line, decay
+with depth in reflection, convolved with the slit's box and a Gaussian): the plain half-maximum
+crossing is biased by whatever lies just inside the surface (by ~1 px with a bright surface line
+in a synthetic test). In transmission the same fit on the mirrored exit edge gives the band
+width ``t G / p_col``: the calibration of G, with a warning when it differs from the computed G
+by more than ``g_tolerance``.
 
 Rows. The band's surfaces run along the rows, so the derivative along the rows of the band
 region (:func:`row_feature_image`) keeps only structure along the slit; the region beyond the
@@ -112,7 +113,9 @@ INCONSISTENT_PX = 1.0
 #: only when no frame matches the template.
 ANCHOR_WEIGHT = 0.05
 #: Smallest weight of the smoothness prior ``r_{k+1} - r_k = 0`` of the row drift (against 1
-#: for a pairwise shift; it grows to 1 as the drift steps seen in columns shrink).
+#: for a pairwise shift; it grows to 1 as the drift steps seen in columns shrink), and the
+#: fixed weight of the columns' prior (it matters only for frames whose own column equations
+#: are down-weighted, :func:`shape_weights`).
 SMOOTH_WEIGHT = 0.01
 #: Frames whose quality (shape agreement of the entrance region) is below this, or with fewer
 #: plain rows than this fraction (:func:`lit_rows`), take their column origin from their
@@ -810,7 +813,7 @@ def shape_weights(disagreement: np.ndarray, ok: np.ndarray, ratio: float = SHAPE
     the median over the ``ok`` frames (the noise level of the series, at least 1e-6).
 
     Noise lowers every frame's correlation alike; a defect at the surface changes the shape of
-    a few frames by tens to hundreds of times that (108-271 times in the frames of an
+    a few frames by tens to hundreds of times that (67-271 times in five frames of an
     evaluation scan whose entrance a crack crossed over most rows)."""
     d = np.nan_to_num(np.asarray(disagreement, float), nan=1.0)
     typ = max(float(np.median(d[ok])) if ok.any() else 1.0, 1e-6)
@@ -1094,12 +1097,8 @@ def register_frames(
     if col_ok.sum() < 2:
         col_ok = good.copy()
     cidx = np.nonzero(col_ok)[0]
-    #    A frame whose entrance region differs in shape from the series' far more than noise
-    #    does (a crack at the entrance surface over most rows: 0.68 px off in an evaluation
-    #    scan) has its entrance equations down-weighted (:func:`shape_weights`); in
-    #    transmission each frame's exit region, matched to the template's, also enters with
-    #    its own shape weight, and a weak smoothness prior carries a frame disturbed at both
-    #    surfaces along with its neighbours.
+    #    Entrance equations weighted by the region's shape agreement, exit equations with
+    #    theirs, a weak smoothness prior (module docstring, "Columns")
     w_ent = shape_weights(1.0 - quality, col_ok)
     xwin = _exit_window(edges, found, ewin, margin, n_cols) if transmission else None
     col_pairs = [(int(k), int(k) + m, dc, float(min(w_ent[k], w_ent[int(k) + m])))

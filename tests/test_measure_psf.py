@@ -412,9 +412,11 @@ def test_edge_crack_length_from_the_forward_model(monkeypatch):
     """A 25 um deep, 120 um long edge crack at mid-thickness with the harness's core-plus-halo
     contrast: its length runs along z, the smear's direction, where the mass's second moment
     also weights the soft tail and the background the contrast region keeps. The forward model's
-    patch (less FORWARD_EDGE_REACH_UM per end) gives the length within max(1 voxel along z, 3 %);
-    the moments give it 2.6 um longer here (+3.3 um mean over the harness's 6 development
-    cracks' worst)."""
+    patch (less FORWARD_EDGE_REACH_UM per end) gives the length within max(1 voxel along z, 3 %)
+    (+2.0 um here). In this invented volume (1 % noise, no background error) the moments do as
+    well (+2.2 um); on the harness's development set they scattered twice as much as the
+    patch (sd 2.3 against 1.5 um, docs/accuracy.md), so the test checks the path and the
+    tolerance, not which is better."""
     pts, mass, psf = _edge_crack_volume(25.0, 120.0, 0.01, 5)
     edge = WaferEdge(np.array([150_000.0, 0.0]), 150_000.0)
     kw = dict(thickness_um=THICKNESS_UM, edge=edge, bootstrap=10, mass=mass, point_spread=psf)
@@ -428,7 +430,7 @@ def test_edge_crack_length_from_the_forward_model(monkeypatch):
     monkeypatch.setattr(measure, "FORWARD_EDGE_LENGTH", False)
     r0 = measure.measure_crack_points(pts, VOXEL_ZYX, **kw)
     assert "forward model fitted to the edge crack" not in r0["uncertainty"]["method"]
-    print("moments", r0["length_um"] - 120.0, "forward", r["length_um"] - 120.0)
+    assert abs(r0["length_um"] - 120.0) <= tol
 
 
 def test_edge_background_takes_the_corner_out_and_keeps_the_columns():
@@ -467,3 +469,66 @@ def test_edge_background_takes_the_corner_out_and_keeps_the_columns():
     assert err_sep.max() > 0.1
     assert err.max() < 0.05 and np.sqrt(np.mean(err**2)) < 0.2 * np.sqrt(np.mean(err_sep**2))
     assert err_region.max() < 0.05
+
+
+def test_volume_point_response_matches_the_point_spread_model(tmp_path):
+    """Eight invented point defects (Gaussian, sigma 3 um) at depths 150-600 um, rendered by the
+    forward model (slit 10-15 um, detector blur 0.7 px, no drift, fringes or flat-field
+    pattern; 2500 photons per pixel, so that no pixel reaches the 16-bit limit) and
+    reconstructed with the exact frame origins: the contrast mass's covariance less the
+    point's own matches :func:`pipeline.measure.volume_point_spread`. Measured (mean over the
+    points, excess over the model): -2.7 um^2 along z (of 118), +1.1 along x (of 3.7), +0.6
+    along y (of 1.7), +2.5 on the x-z covariance (of -19.8); per point the z variance
+    scatters by 7 um^2 (noise in a window of +-60 um). Runs whose peaks were clipped at 65535
+    counts came out much wider (+85 um^2 along z at 60000 photons per pixel)."""
+    from pipeline import omezarr
+    from pipeline.register import write_registration_csv
+    from pipeline.run import run_pipeline
+    from pipeline.runfolder import read_json
+    from synthetic.evaluate import _base_mapping, _place_wafer, truth_registration
+    from synthetic.forward import ACQUISITION_YAML, GROUND_TRUTH_JSON, render_series
+    from synthetic.scenario import scenario_from_mapping
+
+    rng = np.random.default_rng(5)
+    base = _base_mapping(rng, 5, 2500.0)
+    _place_wafer(rng, base, False)
+    base["contrast"]["fringe_visibility"] = 0.0
+    base["instrument"].update(read_noise=0.0, flat_amplitude=0.0, monitor_variation=0.0,
+                              hot_pixels=0, drift_step_px=[0.0, 0.0], dropped_frames=[],
+                              corrupt_frames=[])
+    base["acquisition"]["scan"]["n_frames"] = 100
+    geom = scenario_from_mapping(base, "points").geometry()
+    pts = [[xp + z * geom.tan_psi0, 60.0 + 70.0 * j, z]
+           for z in (150.0, 300.0, 450.0, 600.0) for j, xp in enumerate((120.0, 260.0))]
+    base["defects"] = [{"type": "point", "position_um": p, "size_um": 3.0, "strength": 20.0}
+                       for p in pts]
+    series, run = tmp_path / "series", tmp_path / "run"
+    render_series(scenario_from_mapping(base, "points"), series)
+    run.mkdir()
+    truth = read_json(series / GROUND_TRUTH_JSON, "ground truth")
+    write_registration_csv(run / "registration.csv", truth_registration(truth))
+    run_pipeline(series / ACQUISITION_YAML, run, None, stages=("reconstruct",))
+    arr, meta = omezarr.open_image(run / "volume.ome.zarr")
+    vol = np.asarray(arr, float)
+    dz, dy, dx = meta["voxel_um"]
+    z0, y0, x0 = meta["origin_um"]
+    psf = measure.volume_point_spread(geom, STEP_UM, 0.7, 1.0)
+    hz, hy, hx = int(60 / dz), int(25 / dy), int(40 / dx)
+    covs = []
+    for p in pts:
+        i = [int(round((p[2] - z0) / dz)), int(round((p[1] - y0) / dy)), int(round((p[0] - x0) / dx))]
+        box = tuple(slice(c - h, c + h + 1) for c, h in zip(i, (hz, hy, hx), strict=True))
+        rows = [j for j in range(vol.shape[1]) if hy + 10 <= abs(j - i[1]) < hy + 30]
+        band = vol[box[0]][:, rows, box[2]].mean(axis=(1, 2))  # the plain band beside it
+        c = vol[box] / band[:, None, None] - 1.0
+        zz, yy, xx = np.meshgrid(*(o + s * np.arange(b.start, b.stop) for o, s, b in
+                                   zip((z0, y0, x0), (dz, dy, dx), box, strict=True)), indexing="ij")
+        q = np.column_stack([xx.ravel(), yy.ravel(), zz.ravel()])
+        w = c.ravel()
+        mu = q.T @ w / w.sum()
+        r = q - mu
+        covs.append((r * w[:, None]).T @ r / w.sum() - 9.0 * np.eye(3))
+    excess = np.mean(covs, axis=0) - psf.cov_um2
+    assert abs(excess[2, 2]) <= 0.15 * psf.cov_um2[2, 2], excess
+    assert abs(excess[0, 0]) <= 3.0 and abs(excess[1, 1]) <= 3.0, excess
+    assert abs(excess[0, 2]) <= 3.0, excess
