@@ -1290,7 +1290,13 @@ def measure_crack_points(
                 and _shape_of(kind, touches) == "semi_elliptical"
             ):
                 edge_fit = _crack_forward_fit(
-                    mass.points_um, mass.excess, point_spread, ctx, reach_um, mg["normal"]
+                    mass.points_um,
+                    mass.excess,
+                    point_spread,
+                    ctx,
+                    reach_um,
+                    mg["normal"],
+                    max_voxels=FORWARD_EDGE_MAX_VOXELS,
                 )
             smear = None if point_spread is None else np.asarray(point_spread.direction, float)
             n_l = n if float(n @ mg["normal"]) >= 0 else -n
@@ -1987,17 +1993,24 @@ FORWARD_MAX_PATCH = 300
 #: contrast's soft tail and a wide margin of background, and the second moment weights both by
 #: the squared distance: on the development set (exact registration, seeds 100-120, 6 such
 #: cracks) the moments' lengths were off by -3.0..+3.3 um (sd 2.3 um), the patch's by a constant
-#: plus -1.5..+2.9 um (sd 1.5 um); on seeds 0-20 and 200-208 (4 cracks) by -0.7..+6.8 um against
+#: plus -1.6..+2.8 um (sd 1.5 um); on seeds 0-20 and 200-208 (4 cracks) by -0.7..+6.8 um against
 #: +0.6..+2.3 um (docs/accuracy.md).
 FORWARD_EDGE_LENGTH = True
 #: What the fitted uniform patch reaches beyond an edge crack's front at each end along z, um
 #: (taken off both ends): the development set's mean excess of the fitted length, 3.96 um, over
-#: two ends. Less than the mass-equivalent reach (``CONTRAST_REACH_UM``): the patch's free
-#: amplitude and constant take up part of the soft tail.
+#: two ends (set with the 1200-voxel fit; with FORWARD_EDGE_MAX_VOXELS the development set's
+#: mean error is +0.2 um). Less than the mass-equivalent reach (``CONTRAST_REACH_UM``); why is
+#: not traced (the patch's free amplitude and constant may take up part of the soft tail).
 FORWARD_EDGE_REACH_UM = 2.0
 #: Model error of that length, um (one-sigma, the development set's scatter about the mean
 #: excess: sd 1.55 um over 6 cracks; the fit's own covariance gives 0.1-0.3 um).
 FORWARD_EDGE_SIGMA_UM = 1.5
+#: Most mass voxels the edge-length fit evaluates (a fixed-seed random subset above it). The
+#: subset is a noise of its own that the fit's covariance (scaled to all the voxels) does not
+#: show: with the plane fit's 1200 voxels, six subsets gave one 114 um edge crack's length
+#: 116.4-118.4 um (sd 0.8 um), with 4000 116.5-117.0 um (sd 0.2 um), the fit taking about three
+#: times as long (3-10 s).
+FORWARD_EDGE_MAX_VOXELS = 4000
 
 
 def _unit_half_disk(n_u: int, n_v: int) -> tuple[np.ndarray, np.ndarray]:
@@ -2080,6 +2093,7 @@ def _crack_forward_fit(
     ctx: _CrackCtx,
     reach_um: float,
     n0: np.ndarray,
+    max_voxels: int = FORWARD_MAX_VOXELS,
 ) -> ForwardFit | None:
     """Forward model of a semi-elliptical crack's contrast mass, fitted; None where the model
     does not apply.
@@ -2117,8 +2131,8 @@ def _crack_forward_fit(
         max(3, int(math.ceil(n_u * shrink))), max(2, int(math.ceil(n_v * shrink)))
     )
     n_all = len(e)
-    if n_all > FORWARD_MAX_VOXELS:
-        pick = np.sort(np.random.default_rng(0).choice(n_all, FORWARD_MAX_VOXELS, replace=False))
+    if n_all > max_voxels:
+        pick = np.sort(np.random.default_rng(0).choice(n_all, max_voxels, replace=False))
         q_fit, e_fit = q[pick], e[pick]
     else:
         q_fit, e_fit = q, e
