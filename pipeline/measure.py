@@ -28,7 +28,7 @@ measured from its contrast instead:
    in by inverse variance. Shallow surface cracks (extent down the dip within a few slit
    widths, :data:`FORWARD_DIP_MAX_SLITS`), where subtracting the point-spread's covariance
    amplifies the noise, get their plane from a forward model instead
-   (:func:`_crack_forward_normal`): their patch smeared by the point-spread, fitted to the
+   (:func:`_crack_forward_fit`): their patch smeared by the point-spread, fitted to the
    mass voxels by least squares from the moments' plane.
 3. Kind and shape from the labels (which boundaries they touch, steps 2-4 below). Depth and
    length (:func:`_crack_from_mass`) from the moments of a uniform patch: a semi-ellipse of
@@ -575,7 +575,7 @@ MIN_MASS_SNR = 10.0
 #: below this (3 deg); the labels' normal is then unbiased and joins the mass's
 #: (inverse-variance weights).
 SMEAR_IN_PLANE = math.sin(math.radians(3.0))
-#: Fit the forward model (:func:`_crack_forward_normal`) to shallow surface cracks.
+#: Fit the forward model (:func:`_crack_forward_fit`) to shallow surface cracks.
 FORWARD_FIT = True
 #: Least one-sigma given to the labels' plane normal in that average, deg (the voxel lattice).
 LABEL_TILT_FLOOR_DEG = 0.3
@@ -1265,22 +1265,22 @@ def measure_crack_points(
                 and kind in ("surface_top", "surface_bottom")
                 and mg["dip_um"] <= FORWARD_DIP_MAX_SLITS * point_spread.slit_half_um
             ):
-                fwd = _crack_forward_normal(
+                fwd = _crack_forward_fit(
                     mass.points_um, mass.excess, point_spread, ctx, reach_um, mg["normal"]
                 )
                 if fwd is not None:
                     log.debug(
                         "measure: forward model inclination %.2f +- %.2f deg (moments %.2f)",
-                        plane_angles_deg(fwd[0])[0],
-                        fwd[1],
+                        plane_angles_deg(fwd.normal)[0],
+                        fwd.sigma_inclination_deg,
                         plane_angles_deg(mg["normal"])[0],
                     )
-                    n_f = fwd[0]
                     mg_f = _crack_from_mass(
-                        mass.points_um, mass.excess, psf_cov, ctx, reach_um, n_f, footprint=True
+                        mass.points_um, mass.excess, psf_cov, ctx, reach_um, fwd.normal,
+                        footprint=True,
                     )
                     mg = mg_f or mg
-                    sd_i = fwd[1]
+                    sd_i = fwd.sigma_inclination_deg
                     fwd_used = True
             edge_fit = None
             if (
@@ -1964,7 +1964,7 @@ def _crack_mass_bootstrap(
 # Forward model of a shallow crack: its patch smeared by the point-spread, fitted to the mass
 
 #: Start value of the Gaussian half-width of a crack's own contrast about its sheet and front in
-#: the forward model (:func:`_crack_forward_normal`), um: the forward model's crack contrast
+#: the forward model (:func:`_crack_forward_fit`), um: the forward model's crack contrast
 #: (core 1.5 exp(-r^2 / 2 (1.2 um)^2) + halo 0.3 exp(-r / 4 um),
 #: synthetic.scenario.FeatureContrast) has its half maximum at r = 1.9 um.
 SHEET_SIGMA_UM = 2.0
@@ -2069,21 +2069,6 @@ class ForwardFit:
     sigma_inclination_deg: float
     half_length_um: float
     sigma_half_length_um: float
-
-
-def _crack_forward_normal(
-    q: np.ndarray,
-    e: np.ndarray,
-    psf: PointSpread,
-    ctx: _CrackCtx,
-    reach_um: float,
-    n0: np.ndarray,
-) -> tuple[np.ndarray, float] | None:
-    """Plane normal (unit) and its inclination's one-sigma (deg) of a semi-elliptical crack from
-    the forward model of its contrast mass (:func:`_crack_forward_fit`); None where the model
-    does not apply."""
-    fit = _crack_forward_fit(q, e, psf, ctx, reach_um, n0)
-    return None if fit is None else (fit.normal, fit.sigma_inclination_deg)
 
 
 def _crack_forward_fit(

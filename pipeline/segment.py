@@ -403,6 +403,21 @@ def _column_quantiles_block(block: np.ndarray, bg_zy: np.ndarray, band: float) -
     return np.concatenate([q25, q50], axis=1)
 
 
+def _quartile_level(q25: np.ndarray, q50: np.ndarray) -> np.ndarray:
+    """Lower quartile plus the depth's typical quartile-to-median gap (``q25``, ``q50``: (z, n)
+    per-line statistics; the gap is the median over the n lines of each depth, 0.674 noise
+    sigma): a level that a bright defect covering up to 3/4 of a line does not lift."""
+    gap = _masked_median(q50 - q25, np.isfinite(q50 - q25))
+    return q25 + np.nan_to_num(gap)[:, None]
+
+
+def _unstack_quartiles(stacked: np.ndarray, chunks: tuple[int, ...]) -> tuple[np.ndarray, np.ndarray]:
+    """Undo the per-block stacking [q25 | q50] along axis 1 of blocks ``chunks`` long."""
+    parts = np.split(stacked, np.cumsum([2 * c for c in chunks])[:-1], axis=1)
+    return (np.concatenate([q[:, : q.shape[1] // 2] for q in parts], axis=1),
+            np.concatenate([q[:, q.shape[1] // 2:] for q in parts], axis=1))
+
+
 def _column_background(q25: np.ndarray, q50: np.ndarray) -> np.ndarray:
     """Background C(z, x): what is constant along the slit at one (z, x), i.e. the errors of
     single frames (beam-monitor residuals; a sub-pixel depth-origin error shifts that frame's
@@ -410,8 +425,7 @@ def _column_background(q25: np.ndarray, q50: np.ndarray) -> np.ndarray:
     ch. 11), but on the lower quartile plus the depth's typical quartile-to-median gap
     ``median_x(q50 - q25)`` (0.674 noise sigma): a bright defect covering up to 3/4 of a column
     does not lift it (a plain median would, and leave a dark ghost beside the defect)."""
-    gap = _masked_median(q50 - q25, np.isfinite(q50 - q25))
-    out = q25 + np.nan_to_num(gap)[:, None]
+    out = _quartile_level(q25, q50)
     return np.where(np.isfinite(out), out, 0.0).astype(np.float32)
 
 
@@ -427,8 +441,7 @@ def _background(q25: np.ndarray, q50: np.ndarray) -> np.ndarray:
     the sheet measure took for four false cracks, 17 um either side in y. The filter along y
     puts a single row lifted by a hot-pixel streak back to its neighbours' level (the streak
     itself is then removed by :func:`_destreak`)."""
-    gap = _masked_median(q50 - q25, np.isfinite(q50 - q25))
-    rows = q25 + np.nan_to_num(gap)[:, None]
+    rows = _quartile_level(q25, q50)
     h = BG_Y_WINDOW // 2
     pad = np.pad(rows, ((0, 0), (h, h)), constant_values=np.nan)
     stack = np.stack([pad[:, k:k + rows.shape[1]] for k in range(2 * h + 1)], axis=-1)
@@ -1408,20 +1421,13 @@ def segment_array(
     qr = da.map_blocks(_row_quantiles_block, vx, band, drop_axis=2,
                        chunks=(vx.chunks[0], tuple(2 * c for c in vx.chunks[1])), dtype=np.float32)
     qr = run_tasks([qr], "segment: background rows")[0]
-    # Undo the per-block stacking [q25 | q50] along y.
-    parts = np.split(qr, np.cumsum([2 * c for c in vx.chunks[1]])[:-1], axis=1)
-    bg_zy = _background(np.concatenate([q[:, : q.shape[1] // 2] for q in parts], axis=1),
-                        np.concatenate([q[:, q.shape[1] // 2:] for q in parts], axis=1))
+    bg_zy = _background(*_unstack_quartiles(qr, vx.chunks[1]))
     vy = vol.rechunk({0: min(shape[0], 64), 1: -1, 2: min(shape[2], 128)})
     bzy = da.from_array(bg_zy, chunks=(vy.chunks[0], vy.chunks[1]))
     qs = da.map_blocks(_column_quantiles_block, vy, bzy[:, :, None], band, drop_axis=1,
                        chunks=(vy.chunks[0], tuple(2 * c for c in vy.chunks[2])), dtype=np.float32)
     qs = run_tasks([qs], "segment: background columns")[0]
-    # Undo the per-block stacking [q25 | q50] along x.
-    parts = np.split(qs, np.cumsum([2 * c for c in vy.chunks[2]])[:-1], axis=1)
-    q25 = np.concatenate([q[:, : q.shape[1] // 2] for q in parts], axis=1)
-    q50 = np.concatenate([q[:, q.shape[1] // 2:] for q in parts], axis=1)
-    bg_zx = _column_background(q25, q50)
+    bg_zx = _column_background(*_unstack_quartiles(qs, vy.chunks[2]))
     bg = (bg_zy, bg_zx)
     cchunks = _compute_chunks(shape, p.depth, chunks or COMPUTE_CHUNKS)
     # Under a distributed client each task reads its block with the halo itself (in_task), as
